@@ -1,0 +1,181 @@
+"""The ``render`` command line: a thin layer over the library.
+
+Exit codes (also in the README):
+
+==== =========================================================
+0    everything asked for was done
+1    a batch ran but some files failed (see the manifest)
+2    usage error (unknown option, missing argument)
+3    the job file is invalid
+4    an input (audio file or response) cannot be read
+5    an output cannot be written
+6    a parameter is out of range or a measurement is impossible
+130  interrupted (Ctrl-C)
+==== =========================================================
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+
+from . import __version__
+from .errors import AnalysisError, AudioInputError, JobError, OutputError, ParameterError, RenderError
+
+__all__ = ["main", "build_parser", "EXIT_CODES"]
+
+EXIT_OK = 0
+EXIT_PARTIAL = 1
+EXIT_USAGE = 2
+EXIT_JOB = 3
+EXIT_INPUT = 4
+EXIT_OUTPUT = 5
+EXIT_PARAMETER = 6
+EXIT_INTERRUPTED = 130
+
+#: Exit code by meaning, for the README and its drift test.
+EXIT_CODES = {
+    "ok": EXIT_OK,
+    "some files failed": EXIT_PARTIAL,
+    "usage error": EXIT_USAGE,
+    "invalid job file": EXIT_JOB,
+    "unreadable input": EXIT_INPUT,
+    "unwritable output": EXIT_OUTPUT,
+    "parameter out of range or measurement impossible": EXIT_PARAMETER,
+    "interrupted": EXIT_INTERRUPTED,
+}
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line, exit code 2, no usage dump
+        self.exit(EXIT_USAGE, f"render: {message} (see 'render {self.prog.split()[-1]} --help')\n"
+                  if " " in self.prog else f"render: {message} (see 'render --help')\n")
+
+
+def build_parser():
+    """The argument parser (used by :func:`main` and by the README drift test)."""
+    parser = _Parser(prog="render", description="Batch, offline room renderer for audio post-production.")
+    parser.add_argument("--version", action="version", version=f"render {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    p = sub.add_parser("rooms", help="list the built-in rooms")
+    p.add_argument("--json", action="store_true", help="print JSON instead of a table")
+
+    p = sub.add_parser("ir", help="write a room's impulse response as a 32-bit float WAV")
+    p.add_argument("room", metavar="NAME", help="a built-in room, or a room of the job given with --job")
+    p.add_argument("--job", metavar="FILE", help="a job file whose [rooms] table defines NAME")
+    p.add_argument("--rate", type=int, default=48000, metavar="HZ", help="sample rate in Hz (default 48000)")
+    p.add_argument("--channels", type=int, default=2, choices=(1, 2), help="1 or 2 (default 2)")
+    p.add_argument("-o", "--output", required=True, metavar="FILE.wav", help="where to write the response")
+    p.add_argument("--quiet", action="store_true", help="print nothing but errors")
+
+    p = sub.add_parser("analyze", help="ISO 3382-1 measures of an impulse response")
+    p.add_argument("file", metavar="FILE.wav", help="an impulse response (ours or measured)")
+    p.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    return parser
+
+
+def _cmd_rooms(args):
+    from .catalogue import CATALOGUE
+
+    if args.json:
+        rows = []
+        for name in sorted(CATALOGUE):
+            room = CATALOGUE[name]
+            rows.append(
+                {
+                    "name": name,
+                    "decay_bands_s": [round(t, 3) for t in room.band_targets_s],
+                    "size_m": list(room.size_m),
+                    "volume_m3": round(room.volume_m3, 1),
+                    "critical_distance_m": round(room.critical_distance_m, 2),
+                    "schroeder_frequency_hz": round(room.schroeder_frequency_hz, 1),
+                    "distance_m": round(room.distance_m, 2),
+                    "description": room.description,
+                    "reference": room.reference,
+                }
+            )
+        print(json.dumps(rows, indent=2))
+        return EXIT_OK
+    from .report_text import rooms_table
+
+    print(rooms_table(CATALOGUE))
+    return EXIT_OK
+
+
+def _resolve_room(name, job_path):
+    from .catalogue import get_room
+
+    if job_path is None:
+        return get_room(name)
+    from .job import load_job
+
+    job = load_job(job_path)
+    if name not in job.rooms:
+        raise JobError(f"{job_path}: rooms.{name}: no such room (the job defines: {', '.join(sorted(job.rooms)) or 'none'})")
+    return job.rooms[name]
+
+
+def _cmd_ir(args):
+    from .audio_io import write_response
+    from .synthesis import synthesize
+
+    room = _resolve_room(args.room, args.job)
+    response = synthesize(room, rate_hz=args.rate, channels=args.channels)
+    write_response(args.output, response.ir, rate_hz=args.rate)
+    if not args.quiet:
+        bands = "  ".join(
+            f"{f:g} Hz {m:.3f}/{t:.3f} s ({e:+.1f} %)"
+            for f, m, t, e in zip(response.bands_hz, response.measured_s, response.target_s, response.error_pct)
+        )
+        print(f"{args.output}: {room.name}, {args.rate} Hz, {args.channels} ch, "
+              f"{response.ir.shape[0] / args.rate:.2f} s")
+        print(f"T30 measured/target: {bands}")
+    return EXIT_OK
+
+
+def _cmd_analyze(args):
+    from .analysis import analyze
+    from .audio_io import read_all
+
+    ir, rate = read_all(args.file)
+    result = analyze(ir, rate_hz=float(rate))
+    if args.json:
+        print(json.dumps({"file": args.file, **result.to_dict()}, indent=2))
+    else:
+        print(f"{args.file}: {rate} Hz, {ir.shape[1]} ch, {ir.shape[0] / rate:.3f} s")
+        print(result.format_table())
+    return EXIT_OK
+
+
+_COMMANDS = {"rooms": _cmd_rooms, "ir": _cmd_ir, "analyze": _cmd_analyze}
+
+
+def _exit_code(error):
+    if isinstance(error, JobError):
+        return EXIT_JOB
+    if isinstance(error, AudioInputError):
+        return EXIT_INPUT
+    if isinstance(error, OutputError):
+        return EXIT_OUTPUT
+    if isinstance(error, (ParameterError, AnalysisError)):
+        return EXIT_PARAMETER
+    return EXIT_PARAMETER
+
+
+def main(argv=None):
+    """Run the command line; returns the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return EXIT_USAGE
+    try:
+        return _COMMANDS[args.command](args)
+    except RenderError as error:
+        print(f"render: {error}", file=sys.stderr)
+        return _exit_code(error)
+    except KeyboardInterrupt:
+        print("render: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED

@@ -1,0 +1,48 @@
+"""Plain-text tables for the terminal (formatting only: no DSP, no I/O)."""
+
+from __future__ import annotations
+
+from .acoustics import OCTAVE_BANDS_HZ
+
+__all__ = ["rooms_table", "format_table"]
+
+
+def _band_label(f):
+    return f"{f / 1000:g}k" if f >= 1000 else f"{f:g}"
+
+
+def format_table(header, rows, *, align=None):
+    """A fixed-width table: ``header`` and ``rows`` are lists of strings."""
+    widths = [max(len(str(r[i])) for r in [header, *rows]) for i in range(len(header))]
+    align = align or ["<"] + [">"] * (len(header) - 1)
+    lines = ["  ".join(f"{str(h):{a}{w}}" for h, a, w in zip(header, align, widths))]
+    lines.append("  ".join("-" * w for w in widths))
+    for r in rows:
+        lines.append("  ".join(f"{str(c):{a}{w}}" for c, a, w in zip(r, align, widths)))
+    return "\n".join(lines)
+
+
+def rooms_table(rooms):
+    """The room catalogue: decay per octave band (s), size, volume, r_c, Schroeder frequency.
+
+    >>> from render.room import Room
+    >>> print(rooms_table({"box": Room(name="box", decay_s=0.5, size_m=(4.0, 3.0, 2.5))}).splitlines()[2][:24])
+    box   0.50  0.50  0.50  0
+    """
+    header = ["room"] + [_band_label(f) for f in OCTAVE_BANDS_HZ] + ["size m", "V m³", "r_c m", "f_S Hz", "dist m"]
+    rows = []
+    for name in sorted(rooms):
+        r = rooms[name]
+        rows.append(
+            [name]
+            + [f"{t:.2f}" for t in r.band_targets_s]
+            + [
+                "×".join(f"{v:g}" for v in r.size_m),
+                f"{r.volume_m3:.0f}",
+                f"{r.critical_distance_m:.2f}",
+                f"{r.schroeder_frequency_hz:.0f}",
+                f"{r.distance_m:.1f}",
+            ]
+        )
+    title = "Reverberation time T60 per octave band (s), 125 Hz - 8 kHz"
+    return title + "\n" + format_table(header, rows)

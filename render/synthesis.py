@@ -1,0 +1,410 @@
+"""Impulse-response synthesis: frequency sampling of the room's network, then calibration.
+
+The late tail is the comb/allpass network of :mod:`render.network`, evaluated
+on an FFT grid long enough that time-aliasing stays below ``alias_db``
+(the tail falls 60 dB per T60, so the grid holds ``-alias_db / 60`` times the
+longest decay) and inverse-transformed.  The early part is the image-source
+model of :mod:`render.early`.  The tail fades in between the first reflection
+and the mixing time, at the level diffuse-field theory gives relative to the
+direct sound.
+
+The octave-band reverberation times of a damped comb bank measured by the
+ISO 3382 method drift from the loop-gain design (the bands integrate over
+neighbouring frequencies, the diffusers and the early part add their own
+decay), so the design curve is corrected from measurements of the synthesised
+response by :func:`render.analysis.band_t30_s` until every band is within
+``tolerance_pct`` of its target.
+
+Level convention (what ``wet_db`` means): every channel of the returned
+response has unit energy, ``sum(ir[:, c] ** 2) == 1``.  A dry signal of energy
+E therefore gives a wet signal of energy E (per channel) at ``wet_db = 0``.
+Time convention: frame 0 of the response is the arrival of the direct sound
+(the direct sound itself belongs to the dry stem and is not in the response).
+
+No I/O; deterministic: the same room, rate, channel count and floor give a
+bit-identical response.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import OrderedDict
+from dataclasses import dataclass
+from typing import Tuple
+
+import numpy as np
+import scipy.fft
+
+from . import acoustics, analysis, early, network
+from .acoustics import OCTAVE_BANDS_HZ
+from .errors import ParameterError
+from .room import Room
+from .units import db_to_gain, power_to_db
+
+__all__ = ["Response", "synthesize", "ENGINE_VERSION", "clear_cache", "response_bands_hz", "trim_tail"]
+
+#: Changes whenever the engine's output for the same inputs changes (part of every cache key).
+ENGINE_VERSION = "1"
+
+#: Spacing of the virtual microphones at ``spread = 1`` (m), for the early reflections.
+MIC_SPACING_M = 0.17
+#: Envelope block for trimming the tail (s).
+ENVELOPE_BLOCK_S = 0.005
+#: The grid holds this much more than the target's longest decay (room for calibration).
+DECAY_MARGIN = 1.3
+
+
+@dataclass(frozen=True)
+class Response:
+    """A synthesised room response and what was measured on it.
+
+    Attributes
+    ----------
+    ir : ndarray, shape (frames, channels), float64
+        The wet response, unit energy per channel, frame 0 = direct sound.
+    rate_hz : float
+        Sample rate in Hz.
+    tail_frames : int
+        ``frames - 1``: how much longer than its source a convolved output is.
+    bands_hz : tuple of float
+        Octave bands that were checked.
+    target_s, measured_s : tuple of float
+        Target and measured T30 per band (measured: mean over channels).
+    error_pct : tuple of float
+        ``100 · (measured / target - 1)`` per band.
+    iterations : int
+        Calibration passes made (1 = no correction was needed).
+    design_s : tuple of float
+        The corrected loop-gain design curve at the band centres.
+    reverberant_ratio_db : float
+        Energy of the response relative to the direct sound before normalisation
+        (image sources plus the diffuse tail), in dB.
+    room_fingerprint : str
+        :meth:`Room.fingerprint` of the room.
+    """
+
+    ir: np.ndarray
+    rate_hz: float
+    tail_frames: int
+    bands_hz: Tuple[float, ...]
+    target_s: Tuple[float, ...]
+    measured_s: Tuple[float, ...]
+    error_pct: Tuple[float, ...]
+    iterations: int
+    design_s: Tuple[float, ...]
+    reverberant_ratio_db: float
+    room_fingerprint: str
+
+    @property
+    def channels(self) -> int:
+        return self.ir.shape[1]
+
+    @property
+    def max_error_pct(self) -> float:
+        return max(abs(e) for e in self.error_pct)
+
+
+def response_bands_hz(rate_hz):
+    """Octave bands (of 125 Hz – 8 kHz) whose upper edge lies below Nyquist at ``rate_hz``."""
+    return tuple(f for f in OCTAVE_BANDS_HZ if f * math.sqrt(2.0) < rate_hz / 2.0)
+
+
+_CACHE: "OrderedDict[tuple, Response]" = OrderedDict()
+_CACHE_SIZE = 16
+
+
+def clear_cache():
+    """Forget every cached response (for tests and benchmarks)."""
+    _CACHE.clear()
+
+
+def synthesize(
+    room,
+    *,
+    rate_hz,
+    channels,
+    tail_floor_db=-90.0,
+    calibrate=True,
+    tolerance_pct=1.0,
+    max_iterations=8,
+    alias_db=-120.0,
+):
+    """Synthesise a room's impulse response.
+
+    Parameters
+    ----------
+    room : Room
+        The room.
+    rate_hz : float
+        Sample rate in Hz, 8000 to 384000.
+    channels : int
+        Output channels, 1 to 16 (each a decorrelated network, see ``Room.spread``).
+    tail_floor_db : float
+        Where the tail is cut: the envelope's level re the peak, -150 to -20 dB.
+    calibrate : bool
+        Correct the design from measurements until every band is within ``tolerance_pct``.
+    tolerance_pct : float
+        Calibration goal per band, in %, > 0.
+    max_iterations : int
+        Calibration passes at most, ≥ 1.
+    alias_db : float
+        Largest time-aliasing of the frequency sampling, re the peak, -300 to -60 dB.
+
+    Returns
+    -------
+    Response
+
+    Examples
+    --------
+    >>> r = synthesize(Room(decay_s=0.4, size_m=(4.0, 3.0, 2.5)), rate_hz=16000, channels=1)
+    >>> r.ir.shape[1], round(float((r.ir ** 2).sum()), 9), r.max_error_pct < 3
+    (1, 1.0, True)
+    """
+    if not isinstance(room, Room):
+        raise ParameterError(f"room = {room!r}: expected a Room")
+    if not (isinstance(rate_hz, (int, float)) and 8000 <= rate_hz <= 384000):
+        raise ParameterError(f"rate_hz = {rate_hz!r}: must be from 8000 to 384000 Hz")
+    if isinstance(channels, bool) or not isinstance(channels, int) or not 1 <= channels <= 16:
+        raise ParameterError(f"channels = {channels!r}: must be a whole number from 1 to 16")
+    if not -150.0 <= tail_floor_db <= -20.0:
+        raise ParameterError(f"tail_floor_db = {tail_floor_db!r}: must be from -150 to -20 dB")
+    if not -300.0 <= alias_db <= -60.0:
+        raise ParameterError(f"alias_db = {alias_db!r}: must be from -300 to -60 dB")
+    if not tolerance_pct > 0:
+        raise ParameterError(f"tolerance_pct = {tolerance_pct!r}: must be > 0 %")
+    if isinstance(max_iterations, bool) or not isinstance(max_iterations, int) or max_iterations < 1:
+        raise ParameterError(f"max_iterations = {max_iterations!r}: must be a whole number ≥ 1")
+    key = (
+        ENGINE_VERSION,
+        room.fingerprint(),
+        float(rate_hz),
+        channels,
+        float(tail_floor_db),
+        bool(calibrate),
+        float(tolerance_pct),
+        max_iterations,
+        float(alias_db),
+    )
+    hit = _CACHE.get(key)
+    if hit is not None:
+        _CACHE.move_to_end(key)
+        return hit
+    result = _synthesize(
+        room,
+        rate_hz=float(rate_hz),
+        channels=channels,
+        tail_floor_db=float(tail_floor_db),
+        calibrate=calibrate,
+        tolerance_pct=float(tolerance_pct),
+        max_iterations=max_iterations,
+        alias_db=float(alias_db),
+    )
+    _CACHE[key] = result
+    while len(_CACHE) > _CACHE_SIZE:
+        _CACHE.popitem(last=False)
+    return result
+
+
+def _mic_positions(room, channels):
+    """One virtual microphone per channel, spaced across the talker's line of sight."""
+    src = np.array(room.source_m)
+    lis = np.array(room.listener_m)
+    if channels == 1:
+        return [tuple(lis)]
+    look = lis - src
+    across = np.array([-look[1], look[0], 0.0])
+    if np.linalg.norm(across) < 1e-9:
+        across = np.array([0.0, 1.0, 0.0])
+    across /= np.linalg.norm(across)
+    spacing = MIC_SPACING_M * room.spread
+    lo = np.full(3, 0.05)
+    hi = np.array(room.size_m) - 0.05
+    out = []
+    for c in range(channels):
+        p = lis + (c / (channels - 1) - 0.5) * spacing * across
+        out.append(tuple(np.clip(p, lo, hi)))
+    return out
+
+
+def _early_part(room, *, rate_hz, channels, freqs_hz, n_fft, mix_s):
+    """Image-source reflections per channel (direct sound excluded), direct amplitude = 1."""
+    c = room.speed_of_sound
+    # Walls absorb what the target decay says (Eyring), frequency by frequency.
+    alpha = np.array(
+        [
+            acoustics.eyring_absorption_coefficient(
+                volume_m3=room.volume_m3, surface_m2=room.surface_m2, decay_s=float(t)
+            )
+            for t in room.decay_at(np.array(OCTAVE_BANDS_HZ))
+        ]
+    )
+    beta_bands = early.reflection_coefficient(alpha)
+    beta = np.interp(np.log10(np.maximum(freqs_hz, 1.0)), np.log10(OCTAVE_BANDS_HZ), beta_bands)
+    r0 = room.distance_m
+    reach_m = r0 + 1.5 * mix_s * c
+    smallest = min(room.size_m)
+    max_order = int(min(12, max(2, math.ceil(reach_m / smallest) + 1)))
+    out = np.zeros((channels, n_fft))
+    first_s = np.inf
+    for ch, mic in enumerate(_mic_positions(room, channels)):
+        images = early.image_sources(
+            size_m=room.size_m, source_m=room.source_m, listener_m=mic, max_order=max_order
+        )
+        keep = (images.orders <= 2) | (images.distances_m <= reach_m)
+        dist, orders = images.distances_m[keep], images.orders[keep]
+        delay_frames = (dist - r0) / c * rate_hz + early.SINC_HALF_TAPS  # room for the sinc's left side
+        first_s = min(first_s, float((dist.min() - r0) / c)) if dist.size else first_s
+        spectrum = np.zeros(n_fft // 2 + 1, dtype=complex)
+        for n in np.unique(orders):
+            sel = orders == n
+            taps = early.fractional_delay_taps(delay_frames[sel], r0 / dist[sel], frames=n_fft)
+            spectrum += scipy.fft.rfft(taps, workers=1) * beta ** int(n)
+        out[ch] = np.roll(scipy.fft.irfft(spectrum, n_fft, workers=1), -early.SINC_HALF_TAPS)
+    return out, (first_s if math.isfinite(first_s) else 0.0)
+
+
+def _fade_in(n, start, stop):
+    w = np.ones(n)
+    start = max(0, min(start, n))
+    stop = max(start + 1, min(stop, n))
+    w[:start] = 0.0
+    ramp = np.arange(stop - start) / (stop - start)
+    w[start:stop] = 0.5 - 0.5 * np.cos(np.pi * ramp)
+    return w
+
+
+def trim_tail(ir, *, rate_hz, floor_db):
+    """Cut a response where its envelope falls below ``floor_db`` re its peak.
+
+    The envelope is the RMS in 5 ms blocks (the largest over channels); the
+    response ends one block after the last block above the floor, with a
+    raised-cosine fade over that block.
+
+    Parameters
+    ----------
+    ir : ndarray, shape (frames, channels)
+    rate_hz : float
+    floor_db : float
+        Negative level in dB re the absolute peak.
+
+    Returns
+    -------
+    ndarray, shape (frames_kept, channels)
+    """
+    frames = ir.shape[0]
+    block = max(1, int(round(ENVELOPE_BLOCK_S * rate_hz)))
+    n_blocks = frames // block
+    peak = float(np.max(np.abs(ir)))
+    if peak == 0.0 or n_blocks == 0:
+        return ir.copy()
+    env = np.sqrt(np.mean(ir[: n_blocks * block].reshape(n_blocks, block, -1) ** 2, axis=1)).max(axis=1)
+    above = np.nonzero(env > peak * db_to_gain(floor_db))[0]
+    last = int(above[-1]) if above.size else 0
+    end = min(frames, (last + 2) * block)
+    out = ir[:end].copy()
+    fade = min(block, end)
+    out[end - fade :] *= (0.5 + 0.5 * np.cos(np.pi * (np.arange(1, fade + 1) / fade)))[:, None]
+    return out
+
+
+def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_pct, max_iterations, alias_db):
+    rng = np.random.default_rng([room.seed, int(round(rate_hz)), channels, 0x5EED])
+    bands = response_bands_hz(rate_hz)
+    targets = np.asarray(room.decay_at(np.array(bands)), dtype=float)
+    c = room.speed_of_sound
+    mix_s = acoustics.mixing_time_s(volume_m3=room.volume_m3)
+    design = network.design_network(
+        rate_hz=rate_hz,
+        channels=channels,
+        mean_free_time_s=room.mean_free_path_m / c,
+        decay_max_s=room.decay_max_s,
+        diffusion=room.diffusion,
+        spread=room.spread,
+        rng=rng,
+    )
+    # Grid: the slowest decay falls -alias_db before it wraps round.
+    diagonal_m = math.sqrt(sum(v * v for v in room.size_m))
+    early_reach_s = max(3.0 * diagonal_m, room.distance_m + 1.5 * mix_s * c) / c + 0.01
+    n_fft = scipy.fft.next_fast_len(
+        int(math.ceil((-alias_db / 60.0) * DECAY_MARGIN * room.decay_max_s * rate_hz + early_reach_s * rate_hz)),
+        real=True,
+    )
+    n_fft += n_fft % 2
+    freqs_hz = np.arange(n_fft // 2 + 1) * (rate_hz / n_fft)
+    table = network.unit_delay_phasors(n_fft)
+
+    er, first_s = _early_part(room, rate_hz=rate_hz, channels=channels, freqs_hz=freqs_hz, n_fft=n_fft, mix_s=mix_s)
+    start_frame = int(round(first_s * rate_hz))
+    stop_frame = max(start_frame + 1, int(round(mix_s * rate_hz)))
+    window = _fade_in(n_fft, start_frame, stop_frame)
+
+    # Spectral balance: diffuse-field energy is proportional to T60(f) (w = 4P / (cA), A ∝ V / T).
+    t_target_bins = room.decay_at(freqs_hz)
+    balance = np.sqrt(t_target_bins / room.decay_mid_s)
+    allpasses = []
+    for delays in design.allpass_delays:
+        ap = np.ones(n_fft // 2 + 1, dtype=complex)
+        for m in delays:
+            ap *= network.allpass_spectrum(m, gain=design.allpass_gain, table=table)
+        allpasses.append(ap)
+
+    # Theoretical diffuse energy after the mixing time, direct sound = 1 (see DEVELOPERS.md):
+    # per-frame energy density 4π r² c / (V fs) · exp(-13.8155 t / T).
+    decay_rate = 6.0 * math.log(10.0) / room.decay_mid_s
+    r0 = room.distance_m
+    target_late = 4.0 * math.pi * r0**2 * c / room.volume_m3 / decay_rate * math.exp(-decay_rate * mix_s)
+    log_bands = np.log10(np.array(bands))
+    log_bins = np.log10(np.maximum(freqs_hz, 1.0))
+
+    def render_tail(design_bands_s):
+        t_bins = np.interp(log_bins, log_bands, design_bands_s)
+        log_decay_per_frame = -3.0 * math.log(10.0) / (rate_hz * t_bins)  # ln G per frame of delay
+        nets = np.empty((design.networks, n_fft))
+        for j in range(design.networks):
+            acc = np.zeros(n_fft // 2 + 1, dtype=complex)
+            for k, sign in zip(design.comb_delays[j], design.comb_signs[j]):
+                g = np.exp(k * log_decay_per_frame)
+                acc += (sign * np.sqrt(1.0 - g * g)) * network.comb_spectrum(k, loop=g, table=table)
+            acc *= allpasses[j] * balance / math.sqrt(len(design.comb_delays[j]))
+            nets[j] = scipy.fft.irfft(acc, n_fft, workers=1)
+        tail = design.mix @ nets
+        tail *= window
+        late = np.sum(tail[:, stop_frame:] ** 2, axis=1)
+        tail *= np.sqrt(target_late / np.maximum(late, 1e-300))[:, None]
+        wet = (er + tail).T
+        return trim_tail(np.ascontiguousarray(wet), rate_hz=rate_hz, floor_db=tail_floor_db)
+
+    design_s = targets.copy()
+    iterations = 0
+    while True:
+        iterations += 1
+        wet = render_tail(design_s)
+        measured_ch = analysis.band_t30_s(wet, rate_hz=rate_hz, bands_hz=bands)
+        measured = np.nanmean(measured_ch, axis=1)
+        ratio = targets / measured
+        err = np.abs(measured / targets - 1.0) * 100.0
+        if not calibrate or iterations >= max_iterations or np.all(err <= tolerance_pct) or np.any(~np.isfinite(ratio)):
+            break
+        design_s = np.clip(design_s * ratio, 0.5 * targets, DECAY_MARGIN * targets)
+
+    energy = np.sum(wet**2, axis=0)
+    reverberant_ratio_db = power_to_db(float(np.mean(energy)))
+    wet = wet / np.sqrt(energy)[None, :]
+    predelay = int(round(room.predelay_ms * 1e-3 * rate_hz))
+    if predelay:
+        wet = np.concatenate([np.zeros((predelay, channels)), wet])
+    wet = np.ascontiguousarray(wet)
+    wet.setflags(write=False)
+    return Response(
+        ir=wet,
+        rate_hz=rate_hz,
+        tail_frames=wet.shape[0] - 1,
+        bands_hz=bands,
+        target_s=tuple(float(t) for t in targets),
+        measured_s=tuple(float(m) for m in measured),
+        error_pct=tuple(float(e) for e in 100.0 * (measured / targets - 1.0)),
+        iterations=iterations,
+        design_s=tuple(float(d) for d in design_s),
+        reverberant_ratio_db=reverberant_ratio_db,
+        room_fingerprint=room.fingerprint(),
+    )
