@@ -59,6 +59,15 @@ def build_parser():
     parser.add_argument("--version", action="version", version=f"render {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
 
+    p = sub.add_parser("run", help="render every source of a job file")
+    p.add_argument("job", metavar="JOB.toml", help="the job file")
+    p.add_argument("--jobs", type=int, default=None, metavar="N", help="worker processes (default: all cores; 1 = in this process)")
+    p.add_argument("--resume", action="store_true", help="skip sources already rendered with the same input and settings")
+    p.add_argument("--quiet", action="store_true", help="no progress output")
+
+    p = sub.add_parser("check", help="validate a job file and print its plan; render nothing")
+    p.add_argument("job", metavar="JOB.toml", help="the job file")
+
     p = sub.add_parser("rooms", help="list the built-in rooms")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
 
@@ -149,7 +158,43 @@ def _cmd_analyze(args):
     return EXIT_OK
 
 
-_COMMANDS = {"rooms": _cmd_rooms, "ir": _cmd_ir, "analyze": _cmd_analyze}
+def _cmd_check(args):
+    from .job import load_job
+    from .plan import plan_job
+    from .report_text import plan_table
+
+    plan = plan_job(load_job(args.job))
+    print(plan_table(plan))
+    return EXIT_OK
+
+
+def _cmd_run(args):
+    from .batch import run_plan
+    from .job import load_job
+    from .plan import plan_job
+
+    if args.jobs is not None and args.jobs < 1:
+        raise ParameterError(f"--jobs = {args.jobs}: must be ≥ 1")
+    plan = plan_job(load_job(args.job))
+    result = run_plan(plan, jobs=args.jobs, quiet=args.quiet, resume=args.resume)
+    if not args.quiet:
+        print(f"{plan.job.output_dir}: {result.rendered} rendered, {result.skipped} skipped, "
+              f"{result.failed} failed")
+    for entry in result.manifest["sources"]:
+        if entry["status"] == "failed":
+            print(f"render: failed: {entry['error']}", file=sys.stderr)
+    if result.interrupted:
+        return EXIT_INTERRUPTED
+    return EXIT_PARTIAL if result.failed else EXIT_OK
+
+
+_COMMANDS = {
+    "run": _cmd_run,
+    "check": _cmd_check,
+    "rooms": _cmd_rooms,
+    "ir": _cmd_ir,
+    "analyze": _cmd_analyze,
+}
 
 
 def _exit_code(error):

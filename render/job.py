@@ -362,7 +362,7 @@ def parse_job(text, *, path):
         path=path,
         text_sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
         name=name,
-        output_dir=(path.parent / output),
+        output_dir=Path(os.path.normpath(path.parent / output)),
         stems=tuple(stems),
         format=fmt,
         subtype=subtype,

@@ -200,7 +200,7 @@ def plan_job(job: Job, *, synthesize_rooms=True):
         frames_out = info.frames + (tail_frames if job.tail == "extend" else 0)
         notes = []
         try:
-            fmt, subtype, note = audio_io.output_format(
+            fmt, subtype = audio_io.output_format(
                 requested_format=job.format,
                 requested_subtype=job.subtype,
                 source=info,
@@ -212,8 +212,6 @@ def plan_job(job: Job, *, synthesize_rooms=True):
         except OutputError as e:
             tasks.append(Task(key=key, source=path, group=g.index, room_name=g.room, outputs=outputs, error=str(e)))
             continue
-        if note:
-            notes.append(note)
         settings = {
             "engine": ENGINE_VERSION,
             "room": room.fingerprint(),

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from .acoustics import OCTAVE_BANDS_HZ
 
-__all__ = ["rooms_table", "format_table"]
+__all__ = ["rooms_table", "format_table", "plan_table"]
 
 
 def _band_label(f):
@@ -46,3 +46,44 @@ def rooms_table(rooms):
         )
     title = "Reverberation time T60 per octave band (s), 125 Hz - 8 kHz"
     return title + "\n" + format_table(header, rows)
+
+
+def _size(n):
+    for unit in ("B", "KB", "MB", "GB", "TB"):
+        if n < 1000 or unit == "TB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1000.0
+
+
+def plan_table(plan):
+    """What ``render check`` prints: sources, rooms, outputs, predicted sizes and tails."""
+    from .audio_io import predicted_bytes
+
+    job = plan.job
+    lines = [f"job {job.name}: {job.path}", f"output folder: {job.output_dir}", ""]
+    rows = []
+    total = 0
+    for t in plan.tasks:
+        if t.error is not None:
+            rows.append([t.key, t.room_name, "-", "-", "-", "-", f"ERROR: {t.error}"])
+            continue
+        per_stem = predicted_bytes(frames=t.frames_out, channels=t.channels_out, subtype=t.subtype, format=t.format)
+        total += per_stem * len(t.outputs)
+        rows.append(
+            [
+                t.key,
+                t.room_name,
+                f"{t.info.rate_hz} Hz/{t.info.channels}→{t.channels_out} ch/{t.subtype}",
+                f"{t.tail_frames / t.info.rate_hz:.2f} s",
+                f"{t.wet_db:+.1f}/{t.dry_db:+.1f} dB",
+                _size(per_stem * len(t.outputs)),
+                ", ".join(rel for _, rel in t.outputs),
+            ]
+        )
+    header = ["source", "room", "format", "tail", "wet/dry", "size", "outputs"]
+    lines.append(format_table(header, rows, align=["<", "<", "<", ">", ">", ">", "<"]))
+    bad = sum(1 for t in plan.tasks if t.error is not None)
+    lines.append("")
+    lines.append(f"{len(plan.tasks)} sources ({bad} unreadable), {len(plan.rooms)} room responses, "
+                 f"{_size(total)} of stems predicted")
+    return "\n".join(lines)
