@@ -128,7 +128,7 @@ def render_task(task, *, output_dir):
             return
         dry = dry_queue.pop(n)
         if task.tail == "cut":
-            n = min(n, total_in - written)
+            n = max(0, min(n, total_in - written))
             wet, dry = wet[:n], dry[:n]
             if fade_frames:
                 idx = written + np.arange(n)
