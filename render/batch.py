@@ -152,6 +152,7 @@ def _write_rooms(plan, manifest):
     for name, room, rate, channels in plan.rooms:
         path = files[(name, room.fingerprint(), rate, channels)]
         response = synthesize(room, rate_hz=rate, channels=channels, tail_floor_db=plan.job.tail_floor_db)
+        path.parent.mkdir(parents=True, exist_ok=True)
         audio_io.write_response(path, response.ir, rate_hz=rate)
         manifest["rooms"].append(
             {

@@ -80,7 +80,7 @@ SCHEMA: Dict[str, Dict[str, str]] = {
         "wet_db": "gain of the wet stem, dB (-120 to +24; default -12)",
         "dry_db": "gain of the dry stem, dB (-120 to +24; default 0)",
         "distance_m": "instead of wet_db: talker distance, m; sets the room's distance and "
-        "wet_db = 20·log10(distance / critical distance)",
+        "wet_db = dry_db + 20·log10(distance / critical distance)",
         "channels": '"same" as the source, or 2 to render a mono source in stereo (default "same")',
     },
     "sources": {

@@ -187,7 +187,7 @@ def plan_job(job: Job, *, synthesize_rooms=True):
         channels_out = info.channels
         if g.channels == 2 and info.channels == 1:
             channels_out = 2
-        wet_db = g.wet_db if g.wet_db is not None else 20.0 * math.log10(room.distance_m / room.critical_distance_m)
+        wet_db = g.wet_db if g.wet_db is not None else g.dry_db + 20.0 * math.log10(room.distance_m / room.critical_distance_m)
         ident = (g.room, room.fingerprint(), float(info.rate_hz), channels_out)
         if ident not in used_rooms:
             if synthesize_rooms:

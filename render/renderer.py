@@ -109,6 +109,8 @@ def render_task(task, *, output_dir):
     fade_frames = min(int(round(CUT_FADE_S * info.rate_hz)), total_in) if task.tail == "cut" else 0
     integer_output = task.subtype.startswith("PCM")
     stems = dict(task.outputs)
+    for _, rel in task.outputs:
+        (Path(output_dir) / rel).parent.mkdir(parents=True, exist_ok=True)
     writers = {
         stem: audio_io.BlockWriter(
             Path(output_dir) / rel, rate_hz=info.rate_hz, channels=out_ch, format=task.format, subtype=task.subtype
