@@ -2,8 +2,9 @@
 
 One task per source file.  A task carries paths and small specs only (never
 audio), so it pickles cheaply to a worker process or a cluster.  Tasks are
-sorted longest first by frames + tail (longest-processing-time scheduling),
-ties by source path, so every planning of the same job gives the same order.
+sorted longest first by (frames + tail) × output channels, the work each
+needs (longest-processing-time scheduling), ties by source path, so every
+planning of the same job gives the same order.
 """
 
 from __future__ import annotations
