@@ -21,8 +21,10 @@ from pathlib import Path
 from . import audio_io
 from .errors import RenderError
 from .manifest import new_manifest, read_manifest, write_json_atomic
+from .errors import ParameterError
 from .plan import MANIFEST_NAME, response_files
 from .renderer import render_task
+from .shards import assign_shards, shard_manifest_name, task_weight
 from .synthesis import ENGINE_VERSION, synthesize
 
 __all__ = ["run_plan", "BatchResult"]
@@ -147,9 +149,12 @@ class _Progress:
             self.bar.close()
 
 
-def _write_rooms(plan, manifest):
+def _write_rooms(plan, manifest, tasks):
     files = response_files(plan)
+    used = {(t.room_name, t.room.fingerprint(), float(t.info.rate_hz), t.channels_out) for t in tasks if t.error is None}
     for name, room, rate, channels in plan.rooms:
+        if (name, room.fingerprint(), rate, channels) not in used:
+            continue
         path = files[(name, room.fingerprint(), rate, channels)]
         response = synthesize(room, rate_hz=rate, channels=channels, tail_floor_db=plan.job.tail_floor_db)
         path.parent.mkdir(parents=True, exist_ok=True)
@@ -172,7 +177,43 @@ def _write_rooms(plan, manifest):
         )
 
 
-def _executor(jobs):
+class _DaskExecutor:
+    """A Dask distributed client's concurrent.futures executor (and the cluster it may own)."""
+
+    def __init__(self, address, jobs):
+        try:
+            from dask.distributed import Client, LocalCluster
+        except ImportError:
+            raise ParameterError(
+                "--scheduler needs Dask: pip install 'render[farm]' (dask[distributed])"
+            ) from None
+        self.cluster = None
+        if address == "local":
+            self.cluster = LocalCluster(n_workers=jobs, threads_per_worker=1, processes=True,
+                                        dashboard_address=None)
+            self.client = Client(self.cluster)
+        else:
+            try:
+                self.client = Client(address, timeout=30)
+            except (OSError, TimeoutError) as e:
+                raise ParameterError(f"--scheduler = {address!r}: cannot connect ({e})") from None
+        self.executor = self.client.get_executor(pure=False, retries=2)
+
+    def submit(self, fn, *args):
+        return self.executor.submit(fn, *args)
+
+    def shutdown(self, wait=True, cancel_futures=False):
+        try:
+            self.executor.shutdown(wait=wait)
+        finally:
+            self.client.close()
+            if self.cluster is not None:
+                self.cluster.close()
+
+
+def _executor(jobs, scheduler=None):
+    if scheduler is not None:
+        return _DaskExecutor(scheduler, jobs)
     if jobs == 1:
         return None
     methods = multiprocessing.get_all_start_methods()
@@ -180,7 +221,7 @@ def _executor(jobs):
     return cf.ProcessPoolExecutor(max_workers=jobs, mp_context=ctx)
 
 
-def run_plan(plan, *, jobs=None, quiet=False, resume=False):
+def run_plan(plan, *, jobs=None, quiet=False, resume=False, shard=None, scheduler=None):
     """Render every task of a plan; write the rooms, the stems and the manifest.
 
     Parameters
@@ -193,6 +234,12 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False):
     resume : bool
         Skip sources whose input hash and settings match the existing manifest
         and whose outputs still exist with their recorded hashes.
+    shard : (int, int), optional
+        (K, N): render only shard K of N (1-based) and write
+        ``manifest.shard-K-of-N.json`` instead of ``manifest.json``.
+    scheduler : str, optional
+        A Dask distributed scheduler's address, or ``"local"`` for a
+        ``LocalCluster`` of ``jobs`` workers on this machine.
 
     Returns
     -------
@@ -202,15 +249,26 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False):
     out_dir = job.output_dir
     out_dir.mkdir(parents=True, exist_ok=True)
     jobs = jobs or os.cpu_count() or 1
+    selected = range(len(plan.tasks))
     manifest_path = out_dir / MANIFEST_NAME
-    old = read_manifest(manifest_path) if resume else None
+    if shard is not None:
+        k, n = shard
+        owners = assign_shards([task_weight(t) for t in plan.tasks], shards=n)
+        selected = [i for i in selected if owners[i] == k - 1]
+        manifest_path = out_dir / shard_manifest_name(k, n)
+    old = None
+    if resume:
+        old = read_manifest(manifest_path) or (read_manifest(out_dir / MANIFEST_NAME) if shard else None)
     old_by_key = {(e["source"], e["group"]): e for e in (old or {}).get("sources", [])}
     manifest = new_manifest(job, engine_version=ENGINE_VERSION)
-    _write_rooms(plan, manifest)
+    if shard is not None:
+        manifest["shard"] = {"k": shard[0], "n": shard[1]}
+    _write_rooms(plan, manifest, [plan.tasks[i] for i in selected])
 
     entries = {}
     todo = []
-    for i, task in enumerate(plan.tasks):
+    for i in selected:
+        task = plan.tasks[i]
         if task.error is not None:
             entries[i] = _entry(task, "failed", error=task.error)
         elif resume and _can_skip(task, old_by_key.get((task.key, task.group)), out_dir):
@@ -226,7 +284,7 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False):
         quiet=quiet,
     )
     interrupted = False
-    executor = _executor(min(jobs, max(len(todo), 1)))
+    executor = _executor(min(jobs, max(len(todo), 1)), scheduler) if todo else None
     try:
         if executor is None:
             for i in todo:
@@ -262,7 +320,7 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False):
         "rendered": result.rendered,
         "skipped": result.skipped,
         "failed": result.failed,
-        "not_run": len(plan.tasks) - len(entries),
+        "not_run": len(selected) - len(entries),
         "interrupted": interrupted,
     }
     write_json_atomic(manifest_path, manifest)

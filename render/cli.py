@@ -64,6 +64,12 @@ def build_parser():
     p.add_argument("--jobs", type=int, default=None, metavar="N", help="worker processes (default: all cores; 1 = in this process)")
     p.add_argument("--resume", action="store_true", help="skip sources already rendered with the same input and settings")
     p.add_argument("--quiet", action="store_true", help="no progress output")
+    p.add_argument("--shard", metavar="K/N", help="render only shard K of N (1-based), or 'slurm' for the job array's")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run on a Dask distributed scheduler at ADDRESS, or 'local' for a cluster on this machine")
+
+    p = sub.add_parser("merge", help="combine the shard manifests of an output folder into manifest.json")
+    p.add_argument("output", metavar="OUTDIR", help="the job's output folder")
 
     p = sub.add_parser("check", help="validate a job file and print its plan; render nothing")
     p.add_argument("job", metavar="JOB.toml", help="the job file")
@@ -175,8 +181,12 @@ def _cmd_run(args):
 
     if args.jobs is not None and args.jobs < 1:
         raise ParameterError(f"--jobs = {args.jobs}: must be ≥ 1")
+    from .shards import parse_shard
+
+    shard = parse_shard(args.shard) if args.shard is not None else None
     plan = plan_job(load_job(args.job))
-    result = run_plan(plan, jobs=args.jobs, quiet=args.quiet, resume=args.resume)
+    result = run_plan(plan, jobs=args.jobs, quiet=args.quiet, resume=args.resume, shard=shard,
+                      scheduler=args.scheduler)
     if not args.quiet:
         print(f"{plan.job.output_dir}: {result.rendered} rendered, {result.skipped} skipped, "
               f"{result.failed} failed")
@@ -188,8 +198,25 @@ def _cmd_run(args):
     return EXIT_PARTIAL if result.failed else EXIT_OK
 
 
+def _cmd_merge(args):
+    from pathlib import Path
+
+    from .manifest import merge_shards, write_json_atomic
+    from .plan import MANIFEST_NAME
+
+    merged, problems = merge_shards(args.output)
+    write_json_atomic(Path(args.output) / MANIFEST_NAME, merged)
+    s = merged["summary"]
+    print(f"{args.output}: merged {len(merged['merged_from'])} shard manifests: {s['rendered']} rendered, "
+          f"{s['skipped']} skipped, {s['failed']} failed")
+    for p in problems:
+        print(f"render: merge: {p}", file=sys.stderr)
+    return EXIT_PARTIAL if problems or s["failed"] else EXIT_OK
+
+
 _COMMANDS = {
     "run": _cmd_run,
+    "merge": _cmd_merge,
     "check": _cmd_check,
     "rooms": _cmd_rooms,
     "ir": _cmd_ir,

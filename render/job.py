@@ -71,7 +71,7 @@ SCHEMA: Dict[str, Dict[str, str]] = {
         "format": '"wav" or "flac"; WAV becomes RF64 past 4 GiB (default "wav")',
         "subtype": '"same" (as the source), "PCM_16", "PCM_24" or "FLOAT" (default "same")',
         "tail": '"extend" (output = source + tail) or "cut" (source length, faded) (default "extend")',
-        "tail_floor_db": "where a room's tail is cut, dB re its peak (-150 to -20; default -90)",
+        "tail_floor_db": "where a room's tail is cut, dB re its envelope's peak (-150 to -20; default -90)",
         "name_pattern": 'output name without extension; fields {dir} {name} {stem} {room} {group} '
         '(default "{dir}/{name}.{stem}")',
     },

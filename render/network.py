@@ -58,6 +58,9 @@ MAX_COMBS = 64
 #: Schroeder's modal-density criterion: the delays must add up to at least 0.15·T60 seconds
 #: (Smith, PASP, "Mode Density Requirement").
 MODAL_DENSITY_FACTOR = 0.15
+#: The delays add up to at least this much in any room (s): about 0.4 modes per Hz, so that even
+#: the 125 Hz octave holds tens of modes and its measured decay is stable (our choice).
+MIN_TOTAL_DELAY_S = 0.4
 #: Comb delays are spread around the mean free time, kept inside this range (seconds).
 MEAN_DELAY_RANGE_S = (0.008, 0.050)
 #: Largest allpass gain (at ``diffusion = 1``), as in Schroeder's diffusers (~0.7).
@@ -281,7 +284,8 @@ def design_network(*, rate_hz, channels, mean_free_time_s, decay_max_s, diffusio
         with at most :data:`MAX_COMBS` combs).
     decay_max_s : float
         Longest reverberation time the network must produce (sets the comb count:
-        Σ delays ≥ 0.15 · T60, Schroeder's modal-density criterion).
+        Σ delays ≥ 0.15 · T60, Schroeder's modal-density criterion, and at
+        least :data:`MIN_TOTAL_DELAY_S`).
     diffusion : float
         0 to 1: allpass gain ``0.7 · diffusion``.
     spread : float
@@ -294,7 +298,7 @@ def design_network(*, rate_hz, channels, mean_free_time_s, decay_max_s, diffusio
         raise ParameterError(f"channels = {channels!r}: must be a whole number from 1 to 16")
     lo, hi = MEAN_DELAY_RANGE_S
     tau = min(max(mean_free_time_s, lo), hi)
-    need_s = MODAL_DENSITY_FACTOR * decay_max_s
+    need_s = max(MODAL_DENSITY_FACTOR * decay_max_s, MIN_TOTAL_DELAY_S)
     n_combs = max(MIN_COMBS, math.ceil(need_s / tau))
     if n_combs > MAX_COMBS:
         n_combs = MAX_COMBS

@@ -71,11 +71,13 @@ class Response:
     target_s, measured_s : tuple of float
         Target and measured T30 per band (measured: mean over channels).
     error_pct : tuple of float
-        ``100 · (measured / target - 1)`` per band.
+        ``100 · (measured / target - 1)`` per band, for the mean over channels.
+    channel_error_pct : tuple of tuple of float
+        The same per channel: ``channel_error_pct[channel][band]``.
     iterations : int
         Calibration passes made (1 = no correction was needed).
     design_s : tuple of float
-        The corrected loop-gain design curve at the band centres.
+        The corrected loop-gain design curve at the band centres (mean over networks).
     reverberant_ratio_db : float
         Energy of the response relative to the direct sound before normalisation
         (image sources plus the diffuse tail), in dB.
@@ -90,6 +92,7 @@ class Response:
     target_s: Tuple[float, ...]
     measured_s: Tuple[float, ...]
     error_pct: Tuple[float, ...]
+    channel_error_pct: Tuple[Tuple[float, ...], ...]
     iterations: int
     design_s: Tuple[float, ...]
     reverberant_ratio_db: float
@@ -101,7 +104,8 @@ class Response:
 
     @property
     def max_error_pct(self) -> float:
-        return max(abs(e) for e in self.error_pct)
+        """Largest |error| over bands and channels, in %."""
+        return max(abs(e) for row in self.channel_error_pct for e in row)
 
 
 def response_bands_hz(rate_hz):
@@ -274,7 +278,7 @@ def _fade_in(n, start, stop):
 
 
 def trim_tail(ir, *, rate_hz, floor_db):
-    """Cut a response where its envelope falls below ``floor_db`` re its peak.
+    """Cut a response where its envelope falls below ``floor_db`` re the envelope's peak.
 
     The envelope is the RMS in 5 ms blocks (the largest over channels); the
     response ends one block after the last block above the floor, with a
@@ -294,11 +298,10 @@ def trim_tail(ir, *, rate_hz, floor_db):
     frames = ir.shape[0]
     block = max(1, int(round(ENVELOPE_BLOCK_S * rate_hz)))
     n_blocks = frames // block
-    peak = float(np.max(np.abs(ir)))
-    if peak == 0.0 or n_blocks == 0:
+    if n_blocks == 0 or not np.any(ir):
         return ir.copy()
     env = np.sqrt(np.mean(ir[: n_blocks * block].reshape(n_blocks, block, -1) ** 2, axis=1)).max(axis=1)
-    above = np.nonzero(env > peak * db_to_gain(floor_db))[0]
+    above = np.nonzero(env > env.max() * db_to_gain(floor_db))[0]
     last = int(above[-1]) if above.size else 0
     end = min(frames, (last + 2) * block)
     out = ir[:end].copy()
@@ -357,10 +360,11 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
     log_bins = np.log10(np.maximum(freqs_hz, 1.0))
 
     def render_tail(design_bands_s):
-        t_bins = np.interp(log_bins, log_bands, design_bands_s)
-        log_decay_per_frame = -3.0 * math.log(10.0) / (rate_hz * t_bins)  # ln G per frame of delay
+        # design_bands_s: (networks, bands) loop-gain design curve of each network.
         nets = np.empty((design.networks, n_fft))
         for j in range(design.networks):
+            t_bins = np.interp(log_bins, log_bands, design_bands_s[j])
+            log_decay_per_frame = -3.0 * math.log(10.0) / (rate_hz * t_bins)  # ln G per frame of delay
             acc = np.zeros(n_fft // 2 + 1, dtype=complex)
             for k, sign in zip(design.comb_delays[j], design.comb_signs[j]):
                 g = np.exp(k * log_decay_per_frame)
@@ -374,18 +378,25 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
         wet = (er + tail).T
         return trim_tail(np.ascontiguousarray(wet), rate_hz=rate_hz, floor_db=tail_floor_db)
 
-    design_s = targets.copy()
+    # Each channel is calibrated on its own measurement (its own network); a network shared by
+    # all channels (spread < 1) follows their mean.
+    design_s = np.tile(targets, (design.networks, 1))
     iterations = 0
     while True:
         iterations += 1
         wet = render_tail(design_s)
-        measured_ch = analysis.band_t30_s(wet, rate_hz=rate_hz, bands_hz=bands)
-        measured = np.nanmean(measured_ch, axis=1)
-        ratio = targets / measured
-        err = np.abs(measured / targets - 1.0) * 100.0
-        if not calibrate or iterations >= max_iterations or np.all(err <= tolerance_pct) or np.any(~np.isfinite(ratio)):
+        measured_ch = analysis.band_t30_s(wet, rate_hz=rate_hz, bands_hz=bands).T  # (channels, bands)
+        err = np.abs(measured_ch / targets[None, :] - 1.0) * 100.0
+        if not calibrate or iterations >= max_iterations or np.all(err <= tolerance_pct):
             break
-        design_s = np.clip(design_s * ratio, 0.5 * targets, DECAY_MARGIN * targets)
+        # A band that could not be measured keeps its design (no correction from it).
+        ratio = np.where(np.isfinite(measured_ch), targets[None, :] / measured_ch, 1.0)
+        per_network = np.ones_like(design_s)
+        per_network[:channels] = ratio if design.networks >= channels else ratio.mean(axis=0)
+        if design.networks > channels:
+            per_network[channels:] = ratio.mean(axis=0)
+        design_s = np.clip(design_s * per_network, 0.5 * targets, DECAY_MARGIN * targets)
+    measured = np.nanmean(measured_ch, axis=0)
 
     energy = np.sum(wet**2, axis=0)
     reverberant_ratio_db = power_to_db(float(np.mean(energy)))
@@ -403,8 +414,9 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
         target_s=tuple(float(t) for t in targets),
         measured_s=tuple(float(m) for m in measured),
         error_pct=tuple(float(e) for e in 100.0 * (measured / targets - 1.0)),
+        channel_error_pct=tuple(tuple(float(e) for e in row) for row in 100.0 * (measured_ch / targets[None, :] - 1.0)),
         iterations=iterations,
-        design_s=tuple(float(d) for d in design_s),
+        design_s=tuple(float(d) for d in design_s.mean(axis=0)),
         reverberant_ratio_db=reverberant_ratio_db,
         room_fingerprint=room.fingerprint(),
     )
