@@ -6,7 +6,7 @@ value is computed from a published formula or from published end points;
 source; "from memory" where it was recalled and not checked in a text.
 
 >>> sorted(CATALOGUE)[:3]
-['brick-stairwell', 'civic-concert-hall', 'parish-hall']
+['brick-stairwell', 'civic-concert-hall', 'home-office']
 >>> round(get_room("school-classroom").decay_mid_s, 3)   # DIN 18041 A3 for 216 m³
 0.577
 """

@@ -44,7 +44,7 @@ from .units import db_to_gain, power_to_db
 __all__ = ["Response", "synthesize", "ENGINE_VERSION", "clear_cache", "response_bands_hz", "trim_tail"]
 
 #: Changes whenever the engine's output for the same inputs changes (part of every cache key).
-ENGINE_VERSION = "1"
+ENGINE_VERSION = "2"
 
 #: Spacing of the virtual microphones at ``spread = 1`` (m), for the early reflections.
 MIC_SPACING_M = 0.17
@@ -245,7 +245,9 @@ def _early_part(room, *, rate_hz, channels, freqs_hz, n_fft, mix_s):
     beta_bands = early.reflection_coefficient(alpha)
     beta = np.interp(np.log10(np.maximum(freqs_hz, 1.0)), np.log10(OCTAVE_BANDS_HZ), beta_bands)
     r0 = room.distance_m
-    reach_m = r0 + 1.5 * mix_s * c
+    # Reflections arriving by the mixing time count in full; later ones fade out (raised cosine)
+    # by twice the mixing time, where the diffuse tail has taken over.
+    reach_m = r0 + 2.0 * mix_s * c
     smallest = min(room.size_m)
     max_order = int(min(12, max(2, math.ceil(reach_m / smallest) + 1)))
     out = np.zeros((channels, n_fft))
@@ -254,14 +256,17 @@ def _early_part(room, *, rate_hz, channels, freqs_hz, n_fft, mix_s):
         images = early.image_sources(
             size_m=room.size_m, source_m=room.source_m, listener_m=mic, max_order=max_order
         )
-        keep = (images.orders <= 2) | (images.distances_m <= reach_m)
+        keep = images.distances_m < reach_m
         dist, orders = images.distances_m[keep], images.orders[keep]
-        delay_frames = (dist - r0) / c * rate_hz + early.SINC_HALF_TAPS  # room for the sinc's left side
-        first_s = min(first_s, float((dist.min() - r0) / c)) if dist.size else first_s
+        arrival_s = (dist - r0) / c
+        fade = np.clip((arrival_s - mix_s) / mix_s, 0.0, 1.0)
+        weight = 0.5 + 0.5 * np.cos(np.pi * fade)
+        delay_frames = arrival_s * rate_hz + early.SINC_HALF_TAPS  # room for the sinc's left side
+        first_s = min(first_s, float(arrival_s.min())) if dist.size else first_s
         spectrum = np.zeros(n_fft // 2 + 1, dtype=complex)
         for n in np.unique(orders):
             sel = orders == n
-            taps = early.fractional_delay_taps(delay_frames[sel], r0 / dist[sel], frames=n_fft)
+            taps = early.fractional_delay_taps(delay_frames[sel], weight[sel] * r0 / dist[sel], frames=n_fft)
             spectrum += scipy.fft.rfft(taps, workers=1) * beta ** int(n)
         out[ch] = np.roll(scipy.fft.irfft(spectrum, n_fft, workers=1), -early.SINC_HALF_TAPS)
     return out, (first_s if math.isfinite(first_s) else 0.0)
@@ -381,6 +386,10 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
     # Each channel is calibrated on its own measurement (its own network); a network shared by
     # all channels (spread < 1) follows their mean.
     design_s = np.tile(targets, (design.networks, 1))
+    # Step exponent per channel and band: halved whenever the error changes sign (the band
+    # over-reacted), so that a band whose measurement is more sensitive than the design settles.
+    step = np.ones((channels, len(bands)))
+    last_sign = np.zeros((channels, len(bands)))
     iterations = 0
     while True:
         iterations += 1
@@ -389,14 +398,19 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
         err = np.abs(measured_ch / targets[None, :] - 1.0) * 100.0
         if not calibrate or iterations >= max_iterations or np.all(err <= tolerance_pct):
             break
+        finite = np.isfinite(measured_ch)
+        sign = np.where(finite, np.sign(targets[None, :] - measured_ch), 0.0)
+        step = np.where(sign * last_sign < 0, step * 0.5, np.minimum(1.0, step * 1.25))
+        last_sign = sign
         # A band that could not be measured keeps its design (no correction from it).
-        ratio = np.where(np.isfinite(measured_ch), targets[None, :] / measured_ch, 1.0)
+        ratio = np.where(finite, (targets[None, :] / np.where(finite, measured_ch, 1.0)) ** step, 1.0)
         per_network = np.ones_like(design_s)
         per_network[:channels] = ratio if design.networks >= channels else ratio.mean(axis=0)
         if design.networks > channels:
-            per_network[channels:] = ratio.mean(axis=0)
+            per_network[channels:] = np.exp(np.log(ratio).mean(axis=0))
         design_s = np.clip(design_s * per_network, 0.5 * targets, DECAY_MARGIN * targets)
-    measured = np.nanmean(measured_ch, axis=0)
+    finite = np.isfinite(measured_ch)
+    measured = np.where(finite.any(axis=0), np.where(finite, measured_ch, 0.0).sum(axis=0) / np.maximum(finite.sum(axis=0), 1), np.nan)
 
     energy = np.sum(wet**2, axis=0)
     reverberant_ratio_db = power_to_db(float(np.mean(energy)))

@@ -1,11 +1,11 @@
 """Conversions between decibels and linear values: the one place they happen.
 
->>> db_to_gain(-6.0)
-0.501187...
->>> gain_to_db(0.5)
--6.0206...
->>> power_to_db(0.5)
--3.0103...
+>>> round(db_to_gain(-6.0), 6)
+0.501187
+>>> round(gain_to_db(0.5), 4)
+-6.0206
+>>> round(power_to_db(0.5), 4)
+-3.0103
 """
 
 from __future__ import annotations
