@@ -103,7 +103,14 @@ def fft_cost_per_frame(fft_size, *, ir_frames, fft_cost=FFT_COST):
     return (2.0 * fft_cost * k * math.log2(k) + k) / (k - n + 1)
 
 
-def choose_fft_size(ir_frames, *, max_fft=2**22, min_fft=MIN_FFT, fft_cost=FFT_COST):
+#: Largest transform considered, as a multiple of the response length.  The K·log K model keeps
+#: preferring larger transforms, but past about 4 N memory traffic wins: measured here for
+#: N = 165 840 (2.5 s at 48 kHz), 43-52 ns per output frame and channel at K = 3.6-4.7 N
+#: against 83-96 ns at K = 6-16 N.
+MAX_RATIO = 4.5
+
+
+def choose_fft_size(ir_frames, *, max_fft=2**22, min_fft=MIN_FFT, fft_cost=FFT_COST, max_ratio=MAX_RATIO):
     """Transform size for overlap-save that minimises the work per output frame.
 
     Cost model (see :func:`fft_cost_per_frame`): for a transform of size
@@ -132,6 +139,8 @@ def choose_fft_size(ir_frames, *, max_fft=2**22, min_fft=MIN_FFT, fft_cost=FFT_C
         :data:`MIN_FFT`); ignored where it would exceed ``max_fft``.
     fft_cost : float
         Relative cost of a transform per ``K·log2 K`` (default :data:`FFT_COST`).
+    max_ratio : float
+        Candidates stop at ``max_ratio · N`` (or ``min_fft``), ``>= 2`` (default :data:`MAX_RATIO`).
 
     Returns
     -------
@@ -159,10 +168,13 @@ def choose_fft_size(ir_frames, *, max_fft=2**22, min_fft=MIN_FFT, fft_cost=FFT_C
         )
     if k < min_fft and scipy.fft.next_fast_len(min_fft, real=True) <= max_fft:
         k = scipy.fft.next_fast_len(min_fft, real=True)
+    if not (isinstance(max_ratio, numbers.Real) and max_ratio >= 2):
+        raise ParameterError(f"max_ratio = {max_ratio!r}: must be a number >= 2")
+    upper = min(max_fft, max(int(max_ratio * n), k, min_fft))
     best_k, best_cost = k, fft_cost_per_frame(k, ir_frames=n, fft_cost=fft_cost)
     while True:
         k = scipy.fft.next_fast_len(k + 1, real=True)
-        if k > max_fft:
+        if k > upper:
             break
         cost = fft_cost_per_frame(k, ir_frames=n, fft_cost=fft_cost)
         if cost < best_cost:

@@ -42,6 +42,7 @@ __all__ = [
     "one_pole_loop_spectrum",
     "unit_delay_phasors",
     "comb_spectrum",
+    "delay_phasor",
     "allpass_spectrum",
     "NetworkDesign",
     "design_network",
@@ -180,7 +181,12 @@ def one_pole_loop_spectrum(n_fft, *, feedback, damping):
     return feedback * (1.0 - damping) / (1.0 - damping * _delay_phasor(1, table))
 
 
-def comb_spectrum(delay_frames, *, loop, table):
+def delay_phasor(delay_frames, *, table):
+    """``z^-K`` at every bin of the rfft grid of ``table`` (see :func:`unit_delay_phasors`)."""
+    return _delay_phasor(_check_delay(delay_frames), table)
+
+
+def comb_spectrum(delay_frames, *, loop, table, phasor=None):
     """``z^-K / (1 - L(ω) z^-K)`` on an rfft grid.
 
     Parameters
@@ -193,8 +199,10 @@ def comb_spectrum(delay_frames, *, loop, table):
         ``|L| < 1`` everywhere.
     table : ndarray, shape (n_fft,)
         :func:`unit_delay_phasors` of the grid.
+    phasor : ndarray, optional
+        :func:`delay_phasor` of this delay, when the caller keeps it between calls.
     """
-    zk = _delay_phasor(_check_delay(delay_frames), table)
+    zk = _delay_phasor(_check_delay(delay_frames), table) if phasor is None else phasor
     return zk / (1.0 - loop * zk)
 
 

@@ -142,12 +142,11 @@ def render_task(task, *, output_dir):
             parts["mix"] = dry + wet
         for stem, w in writers.items():
             block = parts[stem]
-            peaks[stem] = max(peaks[stem], float(np.max(np.abs(block))) if block.size else 0.0)
-            if integer_output:
-                over = (block > 1.0) | (block < -1.0)
-                if over.any():
-                    clipped[stem] += int(over.sum())
-                    block = np.clip(block, -1.0, 1.0)
+            peak = max(float(block.max()), -float(block.min())) if block.size else 0.0
+            peaks[stem] = max(peaks[stem], peak)
+            if integer_output and peak > 1.0:
+                clipped[stem] += int(np.count_nonzero(np.abs(block) > 1.0))
+                block = np.clip(block, -1.0, 1.0)
             w.write(block)
         written += n
 

@@ -50,6 +50,8 @@ ENGINE_VERSION = "2"
 MIC_SPACING_M = 0.17
 #: Envelope block for trimming the tail (s).
 ENVELOPE_BLOCK_S = 0.005
+#: Largest memory for keeping the combs' delay phasors between calibration passes (bytes).
+PHASOR_CACHE_BYTES = 160 * 2**20
 #: The grid holds this much more than the target's longest decay (room for calibration).
 DECAY_MARGIN = 1.3
 
@@ -364,6 +366,13 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
     log_bands = np.log10(np.array(bands))
     log_bins = np.log10(np.maximum(freqs_hz, 1.0))
 
+    # The comb phasors z^-K do not change between calibration passes: keep them when they fit
+    # in PHASOR_CACHE_BYTES, recompute them each pass otherwise (very long rooms).
+    n_combs_total = sum(len(d) for d in design.comb_delays)
+    phasors = None
+    if n_combs_total * (n_fft // 2 + 1) * 16 <= PHASOR_CACHE_BYTES:
+        phasors = [[network.delay_phasor(k, table=table) for k in delays] for delays in design.comb_delays]
+
     def render_tail(design_bands_s):
         # design_bands_s: (networks, bands) loop-gain design curve of each network.
         nets = np.empty((design.networks, n_fft))
@@ -371,9 +380,10 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
             t_bins = np.interp(log_bins, log_bands, design_bands_s[j])
             log_decay_per_frame = -3.0 * math.log(10.0) / (rate_hz * t_bins)  # ln G per frame of delay
             acc = np.zeros(n_fft // 2 + 1, dtype=complex)
-            for k, sign in zip(design.comb_delays[j], design.comb_signs[j]):
+            for i, (k, sign) in enumerate(zip(design.comb_delays[j], design.comb_signs[j])):
                 g = np.exp(k * log_decay_per_frame)
-                acc += (sign * np.sqrt(1.0 - g * g)) * network.comb_spectrum(k, loop=g, table=table)
+                zk = phasors[j][i] if phasors is not None else None
+                acc += (sign * np.sqrt(1.0 - g * g)) * network.comb_spectrum(k, loop=g, table=table, phasor=zk)
             acc *= allpasses[j] * balance / math.sqrt(len(design.comb_delays[j]))
             nets[j] = scipy.fft.irfft(acc, n_fft, workers=1)
         tail = design.mix @ nets

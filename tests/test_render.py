@@ -216,3 +216,30 @@ def test_peak_memory_does_not_grow_with_length(tmp_path):
         rss[label] = int(out.stdout.strip().splitlines()[-1])
     # Peak RSS for 3 minutes of stereo is within 10 % of that for 5 seconds (the criterion).
     assert rss["long"] <= 1.10 * rss["short"], rss
+
+
+@pytest.mark.skipif(sys.platform == "win32", reason="SIGINT to a child process is POSIX")
+def test_ctrl_c_leaves_no_partial_output(tmp_path):
+    import signal
+    import time
+
+    rng = np.random.default_rng(11)
+    for i in range(8):
+        write_audio(tmp_path / "in" / f"f{i}.wav", rng.standard_normal((48000 * 15, 2)) * 0.05, 48000, "PCM_24")
+    room = '[rooms.box]\ndecay_s = 1.5\nsize_m = [8.0, 6.0, 3.0]\n'
+    (tmp_path / "job.toml").write_text(job_text(["in/*.wav"], room_block=room))
+    proc = subprocess.Popen([sys.executable, "-m", "render", "run", str(tmp_path / "job.toml"), "--jobs", "1"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    out = tmp_path / "out"
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and not list(out.glob(".*.part")) and proc.poll() is None:
+        time.sleep(0.02)  # wait until a stem is being written, then interrupt
+    proc.send_signal(signal.SIGINT)
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    assert not [p for p in out.rglob("*") if p.name.endswith(".part")]
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["summary"]["interrupted"] is True
+    for entry in manifest["sources"]:  # what the manifest calls rendered is complete
+        for stem in entry["stems"].values():
+            assert sf.info(str(out / stem["path"])).frames == stem["frames"]
