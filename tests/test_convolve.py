@@ -10,6 +10,7 @@ import scipy.fft
 import scipy.signal
 
 from render.convolve import (
+    MAX_RATIO,
     ConvolverState,
     choose_fft_size,
     convolve_block,
@@ -292,7 +293,8 @@ def test_cost_model_size_is_a_fast_length_at_least_twice_the_ir(ir_frames):
 def test_cost_model_picks_the_cheapest_candidate(ir_frames):
     max_fft = 2**20
     k = choose_fft_size(ir_frames, max_fft=max_fft, min_fft=1)
-    candidates = _five_smooth(2 * ir_frames, max_fft)
+    # candidates: fast lengths from 2 N up to MAX_RATIO · N (memory traffic caps the search)
+    candidates = _five_smooth(2 * ir_frames, min(max_fft, max(int(MAX_RATIO * ir_frames), 2 * ir_frames)))
     costs = [fft_cost_per_frame(c, ir_frames=ir_frames) for c in candidates]
     assert k == candidates[int(np.argmin(costs))]
 
