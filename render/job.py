@@ -32,7 +32,7 @@ from .catalogue import CATALOGUE
 from .errors import JobError, RoomError
 from .room import Room
 
-__all__ = ["Job", "SourceGroup", "load_job", "parse_job", "SCHEMA", "STEMS", "PATTERN_FIELDS"]
+__all__ = ["Job", "LoudnessSpec", "SourceGroup", "load_job", "parse_job", "SCHEMA", "STEMS", "PATTERN_FIELDS"]
 
 STEMS = ("mix", "wet", "dry")
 FORMATS = ("wav", "flac")
@@ -83,6 +83,15 @@ SCHEMA: Dict[str, Dict[str, str]] = {
         "wet_db = dry_db + 20·log10(distance / critical distance)",
         "channels": '"same" as the source, or 2 to render a mono source in stereo (default "same")',
     },
+    "loudness": {
+        "preset": '"off" (default), "ebu-r128", "atsc-a85", "podcast-stereo", "podcast-mono" or '
+        '"speech-streaming" (targets and sources in the README)',
+        "target_lufs": "integrated loudness of the mix after rendering, LUFS (-70 to 0; overrides the preset)",
+        "ceiling_dbtp": "highest true peak of the mix, dBTP (-30 to 0; overrides the preset)",
+        "normalize": '"file" (one gain per file) or "group" (one gain per [[sources]] group) (default "file")',
+        "over_ceiling": '"limit" (true-peak limiter), "lower" (less gain, shortfall reported) or "fail" '
+        '(default "limit")',
+    },
     "sources": {
         "files": "list of globs relative to the job file; ** matches folders recursively (required)",
         "room": "a room of [rooms] or a built-in room (required)",
@@ -95,6 +104,23 @@ SCHEMA: Dict[str, Dict[str, str]] = {
 
 DEFAULT_WET_DB = -12.0
 DEFAULT_DRY_DB = 0.0
+
+
+@dataclass(frozen=True)
+class LoudnessSpec:
+    """The resolved ``[loudness]`` table (``target_lufs`` None: keep the level)."""
+
+    preset: str = "off"
+    target_lufs: Optional[float] = None
+    ceiling_dbtp: Optional[float] = None
+    tolerance_lu: Optional[float] = None
+    normalize: str = "file"
+    over_ceiling: str = "limit"
+
+    @property
+    def active(self) -> bool:
+        """True when anything changes the level (a target or a ceiling)."""
+        return self.target_lufs is not None or self.ceiling_dbtp is not None
 
 
 @dataclass(frozen=True)
@@ -129,6 +155,7 @@ class Job:
     name_pattern: str
     rooms: Dict[str, Room]
     groups: Tuple[SourceGroup, ...]
+    loudness: LoudnessSpec = LoudnessSpec()
 
     @property
     def base_dir(self) -> Path:
@@ -250,6 +277,28 @@ def _parse_gains(check, key, table, defaults):
     return out
 
 
+def _parse_loudness(check, table):
+    from .delivery import NORMALIZE, OVER_CEILING, PRESETS
+
+    check.known("loudness", table, SCHEMA["loudness"])
+    name = check.string("loudness.preset", table.get("preset", "off"), choices=tuple(PRESETS))
+    preset = PRESETS[name]
+    target, ceiling, tolerance = preset.target_lufs, preset.ceiling_dbtp, preset.tolerance_lu
+    if "target_lufs" in table:
+        target = check.number("loudness.target_lufs", table["target_lufs"], lo=-70.0, hi=0.0, unit="LUFS")
+        tolerance = tolerance if tolerance is not None else 0.2
+    if "ceiling_dbtp" in table:
+        ceiling = check.number("loudness.ceiling_dbtp", table["ceiling_dbtp"], lo=-30.0, hi=0.0, unit="dBTP")
+    return LoudnessSpec(
+        preset=name,
+        target_lufs=target,
+        ceiling_dbtp=ceiling,
+        tolerance_lu=tolerance,
+        normalize=check.string("loudness.normalize", table.get("normalize", "file"), choices=NORMALIZE),
+        over_ceiling=check.string("loudness.over_ceiling", table.get("over_ceiling", "limit"), choices=OVER_CEILING),
+    )
+
+
 def _check_pattern(check, pattern):
     try:
         names = [f for _, f, _, _ in string.Formatter().parse(pattern) if f is not None]
@@ -290,7 +339,7 @@ def parse_job(text, *, path):
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
         raise JobError(f"{path}: not valid TOML: {e}") from None
-    check.known("", data, ("job", "rooms", "mix", "sources"))
+    check.known("", data, ("job", "rooms", "mix", "loudness", "sources"))
 
     job_t = check.table("job", data.get("job", {}))
     check.known("job", job_t, SCHEMA["job"])
@@ -319,6 +368,8 @@ def parse_job(text, *, path):
     defaults = _parse_gains(
         check, "mix", mix_t, {"wet_db": DEFAULT_WET_DB, "dry_db": DEFAULT_DRY_DB, "distance_m": None, "channels": None}
     )
+
+    loudness = _parse_loudness(check, check.table("loudness", data.get("loudness", {})))
 
     sources_t = data.get("sources")
     if sources_t is None:
@@ -371,6 +422,7 @@ def parse_job(text, *, path):
         name_pattern=pattern,
         rooms=rooms,
         groups=tuple(groups),
+        loudness=loudness,
     )
     for g in job.groups:  # distance_m must fit the group's room
         job.room_for(g)

@@ -113,4 +113,4 @@ def test_job_hash_changes_with_text():
 
 
 def test_schema_lists_every_section():
-    assert set(SCHEMA) == {"job", "rooms.NAME", "mix", "sources"}
+    assert set(SCHEMA) == {"job", "rooms.NAME", "mix", "loudness", "sources"}
