@@ -23,7 +23,9 @@ from .errors import RenderError
 from .manifest import new_manifest, read_manifest, write_json_atomic
 from .errors import ParameterError
 from .plan import MANIFEST_NAME, response_files
-from .renderer import render_task
+from .delivery import decide_gain
+from .loudness import integrated_over
+from .renderer import measure_task, render_task, temp_path_for
 from .shards import assign_shards, shard_manifest_name, task_weight
 from .synthesis import ENGINE_VERSION, synthesize
 
@@ -42,10 +44,12 @@ class BatchResult:
         self.failed = statuses.count("failed")
 
 
-def _worker(task, output_dir):
+def _worker(task, output_dir, mode="render", kwargs=None):
     """Run in a worker: never raises for a bad file, returns (status, facts or error)."""
     try:
-        return "rendered", render_task(task, output_dir=output_dir)
+        if mode == "measure":
+            return "measured", measure_task(task, output_dir=output_dir)
+        return "rendered", render_task(task, output_dir=output_dir, **(kwargs or {}))
     except RenderError as e:
         return "failed", str(e)
     except (OSError, ValueError, RuntimeError, MemoryError) as e:
@@ -89,7 +93,35 @@ def _entry(task, status, facts=None, error=None):
         entry["input"]["sha256"] = facts["input_sha256"]
         entry["stems"] = facts["stems"]
         entry["render_s"] = facts["render_s"]
+        entry["notes"] = list(task.notes) + list(facts.get("notes", []))
+        entry["metadata"] = facts.get("metadata")
     return entry
+
+
+def _loudness_entry(spec, facts, before=None, decision=None):
+    after = facts.get("after") if facts else None
+    met = None
+    if spec.active and after is not None:
+        met = True
+        if spec.target_lufs is not None:
+            met = after["integrated_lufs"] is not None and abs(after["integrated_lufs"] - spec.target_lufs) <= (
+                spec.tolerance_lu or 0.0) + 1e-9
+        if spec.ceiling_dbtp is not None and after["true_peak_dbtp"] is not None:
+            met = met and after["true_peak_dbtp"] <= spec.ceiling_dbtp + 1e-6
+    return {
+        "preset": spec.preset,
+        "target_lufs": spec.target_lufs,
+        "ceiling_dbtp": spec.ceiling_dbtp,
+        "tolerance_lu": spec.tolerance_lu,
+        "normalize": spec.normalize,
+        "over_ceiling": spec.over_ceiling,
+        "before": before,
+        "after": after,
+        "gain_db": facts.get("gain_db") if facts else None,
+        "limiter_reduction_db": facts.get("limiter_reduction_db") if facts else None,
+        "shortfall_lu": round(decision.shortfall_lu, 4) if decision is not None else 0.0,
+        "met": met,
+    }
 
 
 def _can_skip(task, old, output_dir):
@@ -110,6 +142,24 @@ def _can_skip(task, old, output_dir):
     except (OSError, RenderError):
         return False
     return True
+
+
+def _remove(path):
+    try:
+        os.unlink(path)
+    except OSError:
+        pass
+
+
+def _remove_tree(folder):
+    """Remove the two-pass temporaries' folder (and anything left in it by a killed run)."""
+    if folder.is_dir():
+        for p in folder.iterdir():
+            _remove(p)
+        try:
+            folder.rmdir()
+        except OSError:
+            pass
 
 
 class _Progress:
@@ -253,7 +303,15 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False, shard=None, schedule
     manifest_path = out_dir / MANIFEST_NAME
     if shard is not None:
         k, n = shard
-        owners = assign_shards([task_weight(t) for t in plan.tasks], shards=n)
+        spec = job.loudness
+        if spec.normalize == "group" and spec.target_lufs is not None:
+            # One gain per group needs the whole group in one shard: groups are the units.
+            groups = sorted({t.group for t in plan.tasks})
+            weight = {g: sum(task_weight(t) for t in plan.tasks if t.group == g) for g in groups}
+            unit_owner = dict(zip(groups, assign_shards([weight[g] for g in groups], shards=n)))
+            owners = [unit_owner[t.group] for t in plan.tasks]
+        else:
+            owners = assign_shards([task_weight(t) for t in plan.tasks], shards=n)
         selected = [i for i in selected if owners[i] == k - 1]
         manifest_path = out_dir / shard_manifest_name(k, n)
     old = None
@@ -278,33 +336,87 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False, shard=None, schedule
         else:
             todo.append(i)
 
-    progress = _Progress(
-        files=len(todo),
-        audio_s=sum(plan.tasks[i].frames_out / plan.tasks[i].info.rate_hz for i in todo),
-        quiet=quiet,
-    )
+    spec = job.loudness
+    two_pass = spec.target_lufs is not None or (spec.ceiling_dbtp is not None and spec.over_ceiling != "limit")
+    if two_pass and spec.normalize == "group":
+        # One gain per group: a group renders whole or not at all.
+        redo = {plan.tasks[i].group for i in todo}
+        for i in list(entries):
+            t = plan.tasks[i]
+            if entries[i]["status"] == "skipped" and t.group in redo:
+                del entries[i]
+                todo.append(i)
+        todo.sort()
+    audio_s = sum(plan.tasks[i].frames_out / plan.tasks[i].info.rate_hz for i in todo)
+    progress = _Progress(files=len(todo) * (2 if two_pass else 1), audio_s=audio_s * (2 if two_pass else 1),
+                         quiet=quiet)
     interrupted = False
     executor = _executor(min(jobs, max(len(todo), 1)), scheduler) if todo else None
-    try:
+
+    def execute(calls):
+        """Run (index, mode, kwargs) calls; yield (index, status, payload) as they finish."""
         if executor is None:
-            for i in todo:
-                t = plan.tasks[i]
-                status, payload = _worker(t, out_dir)
-                entries[i] = _entry(t, status, facts=payload if status == "rendered" else None,
-                                    error=None if status == "rendered" else payload)
-                progress.step(audio_s=t.frames_out / t.info.rate_hz, label=t.key)
+            for i, mode, kwargs in calls:
+                status, payload = _worker(plan.tasks[i], out_dir, mode, kwargs)
+                progress.step(audio_s=plan.tasks[i].frames_out / plan.tasks[i].info.rate_hz, label=plan.tasks[i].key)
+                yield i, status, payload
+            return
+        futures = {executor.submit(_worker, plan.tasks[i], out_dir, mode, kwargs): i for i, mode, kwargs in calls}
+        for fut in cf.as_completed(futures):
+            i = futures[fut]
+            try:
+                status, payload = fut.result()
+            except Exception as e:  # a worker died (killed, out of memory)
+                status, payload = "failed", f"{plan.tasks[i].key}: worker failed: {type(e).__name__}: {e}"
+            progress.step(audio_s=plan.tasks[i].frames_out / plan.tasks[i].info.rate_hz, label=plan.tasks[i].key)
+            yield i, status, payload
+
+    def record(i, status, payload, before=None, decision=None):
+        t = plan.tasks[i]
+        ok = status == "rendered"
+        entries[i] = _entry(t, status, facts=payload if ok else None, error=None if ok else payload)
+        entries[i]["loudness"] = _loudness_entry(spec, payload if ok else None, before, decision)
+
+    limit = spec.ceiling_dbtp if (spec.ceiling_dbtp is not None and spec.over_ceiling == "limit") else None
+    try:
+        if not two_pass:
+            for i, status, payload in execute([(i, "render", {"limit": limit}) for i in todo]):
+                record(i, status, payload)
         else:
-            futures = {executor.submit(_worker, plan.tasks[i], out_dir): i for i in todo}
-            for fut in cf.as_completed(futures):
-                i = futures[fut]
-                t = plan.tasks[i]
-                try:
-                    status, payload = fut.result()
-                except Exception as e:  # a worker died (killed, out of memory)
-                    status, payload = "failed", f"{t.key}: worker failed: {type(e).__name__}: {e}"
-                entries[i] = _entry(t, status, facts=payload if status == "rendered" else None,
-                                    error=None if status == "rendered" else payload)
-                progress.step(audio_s=t.frames_out / t.info.rate_hz, label=t.key)
+            measured = {}
+            for i, status, payload in execute([(i, "measure", None) for i in todo]):
+                if status == "measured":
+                    measured[i] = payload
+                else:
+                    record(i, status, payload)
+            decisions = {}
+            if spec.normalize == "group":
+                by_group = {}
+                for i in measured:
+                    by_group.setdefault(plan.tasks[i].group, []).append(i)
+                for members in by_group.values():
+                    lufs = integrated_over([measured[i]["hops"] for i in members],
+                                           hop_frames=measured[members[0]]["hop_frames"])
+                    peak = max(measured[i]["before"]["true_peak_dbtp"] for i in members)
+                    d = decide_gain(lufs, target_lufs=spec.target_lufs, true_peak_dbtp=peak,
+                                    ceiling_dbtp=spec.ceiling_dbtp, over_ceiling=spec.over_ceiling)
+                    decisions.update({i: d for i in members})
+            else:
+                for i, m in measured.items():
+                    decisions[i] = decide_gain(m["before"]["integrated_lufs"], target_lufs=spec.target_lufs,
+                                               true_peak_dbtp=m["before"]["true_peak_dbtp"],
+                                               ceiling_dbtp=spec.ceiling_dbtp, over_ceiling=spec.over_ceiling)
+            calls = []
+            for i in sorted(measured):
+                d = decisions[i]
+                if d.fail is not None:
+                    _remove(temp_path_for(plan.tasks[i], out_dir))
+                    record(i, "failed", f"{plan.tasks[i].key}: {d.fail}", measured[i]["before"], d)
+                    continue
+                calls.append((i, "render", {"gain_db": d.gain_db, "limit": spec.ceiling_dbtp if d.limit else None,
+                                            "two_pass": True}))
+            for i, status, payload in execute(calls):
+                record(i, status, payload, measured[i]["before"], decisions[i])
     except KeyboardInterrupt:
         interrupted = True
         if executor is not None:
@@ -314,6 +426,11 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False, shard=None, schedule
         if executor is not None:
             executor.shutdown(wait=True)
         progress.close()
+        if shard is None:
+            _remove_tree(out_dir / ".render-tmp")
+        else:
+            for i in todo:
+                _remove(temp_path_for(plan.tasks[i], out_dir))
     manifest["sources"] = [entries[i] for i in sorted(entries, key=lambda i: (plan.tasks[i].key, plan.tasks[i].group))]
     result = BatchResult(manifest, interrupted=interrupted)
     manifest["summary"] = {

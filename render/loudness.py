@@ -556,3 +556,39 @@ def measure(signal, *, rate_hz, channel_weights=None):
     _check_block(signal, None, name="signal")
     state = meter_init(rate_hz=rate_hz, channels=signal.shape[1], channel_weights=channel_weights)
     return meter_result(meter_update(signal, state))
+
+
+def integrated_over(hop_series, *, hop_frames):
+    """Integrated loudness of several signals taken as one programme (e.g. a season's episodes).
+
+    Each signal's gating blocks are formed within that signal (no block spans
+    two files); the gates then run over all blocks together, as BS.1770 gates
+    one programme.
+
+    Parameters
+    ----------
+    hop_series : sequence of 1-D arrays
+        Per-100 ms weighted energies of each signal (what a meter state holds).
+    hop_frames : int
+        Frames per hop (the same for every signal).
+
+    Returns
+    -------
+    float or None
+        LUFS, or None when no block is above the absolute gate.
+    """
+    blocks = [
+        _window_means(np.asarray(h, dtype=float), HOPS_PER_BLOCK, hop_frames)
+        for h in hop_series
+        if len(h) >= HOPS_PER_BLOCK
+    ]
+    if not blocks:
+        return None
+    blocks = np.concatenate(blocks)
+    levels = _lufs(blocks)
+    above = levels > ABSOLUTE_GATE_LUFS
+    if not above.any():
+        return None
+    relative = _lufs(float(np.mean(blocks[above]))) + RELATIVE_GATE_LU
+    gated = above & (levels > relative)
+    return float(_lufs(float(np.mean(blocks[gated]))))

@@ -7,27 +7,46 @@ block to temporary files that are renamed into place only when every stem is
 complete.
 
 Alignment: output frame 0 is source frame 0 (no latency, no pre-roll).
-``dry``, ``wet`` and ``mix`` have exactly the same length and ``mix = dry + wet``
-sample by sample before quantisation.
+``dry``, ``wet`` and ``mix`` have exactly the same length and ``mix = dry + wet``.
+
+Two ways through:
+
+* **One pass** (no loudness target, and either no ceiling or a limiter for it):
+  convolve → (limiter) → dither → write, metering the mix as it is written.
+* **Two passes** (a loudness target, or a ceiling handled by lowering the gain
+  or failing the file): :func:`measure_task` convolves, meters the mix and
+  keeps the wet signal in a float temporary; the batch decides the gain (per
+  file or per group); :func:`render_task` with ``gain_db`` then reads the
+  source and the temporary, applies the gain (and limiter), dithers and writes.
+
+The gain and the limiter's gain curve are applied to ``dry`` and ``wet``
+alike.  For integer outputs ``dry`` and ``wet`` are dithered and ``mix`` is
+their exact sum on the integer grid, so the stems null against the mix to
+the last bit (unless the mix clips, which is counted).
 """
 
 from __future__ import annotations
 
+import dataclasses
+import os
 import time
 from collections import OrderedDict
 from pathlib import Path
 
 import numpy as np
+import soundfile as sf
 
-from . import audio_io, convolve
-from .errors import OutputError, RenderError
+from . import __version__, audio_io, convolve, dither, limiter, loudness, riff, truepeak
+from .errors import AudioInputError, OutputError, RenderError
 from .synthesis import synthesize
 from .units import db_to_gain, gain_to_db
 
-__all__ = ["render_task", "CUT_FADE_S", "kernel_for"]
+__all__ = ["render_task", "measure_task", "kernel_for", "CUT_FADE_S", "TEMP_DIR", "temp_path_for"]
 
 #: Fade of the wet stem at the end of the source with ``tail = "cut"``, in seconds.
 CUT_FADE_S = 0.05
+#: Folder (inside the output folder) of the two-pass renders' temporaries.
+TEMP_DIR = ".render-tmp"
 
 _KERNELS: "OrderedDict[tuple, convolve.Kernel]" = OrderedDict()
 _KERNEL_CACHE_SIZE = 8
@@ -55,8 +74,13 @@ def kernel_for(task):
     return kernel
 
 
-class _DryQueue:
-    """Dry frames waiting for their wet counterparts (no copies beyond one block)."""
+def temp_path_for(task, output_dir):
+    """Where the two-pass render keeps a task's wet signal between the passes."""
+    return Path(output_dir) / TEMP_DIR / f"{task.settings_sha256[:24]}.wet.wav"
+
+
+class _Queue:
+    """Frames waiting to be paired with frames that arrive later (no copies beyond one block)."""
 
     def __init__(self, channels):
         self.blocks = []
@@ -82,7 +106,159 @@ class _DryQueue:
         return out
 
 
-def render_task(task, *, output_dir):
+def _dry(block, task):
+    dry = block * db_to_gain(task.dry_db)
+    if dry.shape[1] != task.channels_out:
+        dry = np.repeat(dry, task.channels_out, axis=1)
+    return dry
+
+
+def _convolved(task, kernel):
+    """(dry, wet) blocks, aligned, ``task.frames_out`` frames in all, cut fade applied."""
+    info = task.info
+    total_in = info.frames
+    fade = min(int(round(CUT_FADE_S * info.rate_hz)), total_in) if task.tail == "cut" else 0
+    state = convolve.initial_state(kernel, channels=info.channels)
+    queue = _Queue(task.channels_out)
+    done = 0
+
+    def pair(wet):
+        nonlocal done
+        n = wet.shape[0]
+        dry = queue.pop(n)
+        if task.tail == "cut":
+            n = max(0, min(n, total_in - done))
+            wet, dry = wet[:n], dry[:n]
+            if fade and n:
+                pos = done + np.arange(n) - (total_in - fade)
+                ramp = np.where(pos >= 0, 0.5 + 0.5 * np.cos(np.pi * (pos + 1) / fade), 1.0)
+                wet = wet * ramp[:, None]
+        done += n
+        return dry, wet
+
+    for block in audio_io.read_blocks(task.source, block_frames=kernel.block_frames):
+        queue.push(_dry(block, task))
+        wet, state = convolve.convolve_block(block, state, kernel=kernel)
+        if wet.shape[0]:
+            yield pair(wet)
+    if state.frames_in != total_in:
+        raise AudioInputError(f"{task.key}: read {state.frames_in} frames, the file's header says {total_in}")
+    last = convolve.flush(state, kernel=kernel, tail_frames=task.tail_frames if task.tail == "extend" else 0)
+    if last.shape[0]:
+        yield pair(last)
+
+
+def _from_temporary(task, temp, block_frames):
+    """(dry, wet) blocks from the source and the wet temporary of :func:`measure_task`."""
+    with sf.SoundFile(str(temp)) as wet_file:
+        if wet_file.frames != task.frames_out:
+            raise RenderError(f"{task.key}: temporary {temp} has {wet_file.frames} frames, expected {task.frames_out}")
+        done = 0
+        for block in audio_io.read_blocks(task.source, block_frames=block_frames):
+            dry = _dry(block, task)
+            wet = wet_file.read(dry.shape[0], dtype="float64", always_2d=True)
+            done += dry.shape[0]
+            yield dry, wet
+        while done < task.frames_out:
+            n = min(block_frames, task.frames_out - done)
+            wet = wet_file.read(n, dtype="float64", always_2d=True)
+            yield np.zeros((n, task.channels_out)), wet
+            done += n
+
+
+class _Meter:
+    """Loudness and true peak of one signal, block by block."""
+
+    def __init__(self, rate_hz, channels):
+        self.loud = loudness.meter_init(rate_hz=rate_hz, channels=channels)
+        self.peak = truepeak.truepeak_init(rate_hz=rate_hz, channels=channels)
+
+    def update(self, block):
+        self.loud = loudness.meter_update(block, self.loud)
+        self.peak = truepeak.truepeak_update(block, self.peak)
+
+    def result(self):
+        lr = loudness.meter_result(self.loud)
+        tp = truepeak.truepeak_result(self.peak)
+        return {
+            "integrated_lufs": _round(lr.integrated_lufs),
+            "momentary_max_lufs": _round(lr.momentary_max_lufs),
+            "short_term_max_lufs": _round(lr.short_term_max_lufs),
+            "loudness_range_lu": _round(lr.loudness_range_lu),
+            "true_peak_dbtp": _round(tp.true_peak_dbtp),
+            "sample_peak_dbfs": _round(tp.sample_peak_dbfs),
+            "reason": lr.reason,
+        }
+
+    def hops(self):
+        """Per-100 ms weighted energies (for group loudness), as a list."""
+        s = self.loud
+        return s._hops.buf[: s._hop_count].tolist()
+
+
+def _round(value, digits=4):
+    return None if value is None else round(float(value), digits)
+
+
+def measure_task(task, *, output_dir):
+    """First pass of a two-pass render: convolve, meter the mix, keep the wet signal.
+
+    Returns
+    -------
+    dict
+        ``before`` (the mix's loudness and true peak at unit gain), ``hops``
+        (per-100 ms weighted energies, for group loudness) and ``hop_frames``.
+    """
+    kernel = kernel_for(task)
+    temp = temp_path_for(task, output_dir)
+    temp.parent.mkdir(parents=True, exist_ok=True)
+    meter = _Meter(task.info.rate_hz, task.channels_out)
+    with audio_io.BlockWriter(temp, rate_hz=task.info.rate_hz, channels=task.channels_out, format="WAV",
+                              subtype="DOUBLE") as w:
+        for dry, wet in _convolved(task, kernel):
+            meter.update(dry + wet)
+            w.write(wet)
+    return {"before": meter.result(), "hops": meter.hops(), "hop_frames": meter.loud.hop_frames}
+
+
+def _source_metadata(task):
+    if task.info.format not in ("WAV", "RF64") or task.format not in ("WAV", "RF64"):
+        return None, ()
+    try:
+        meta = riff.read_metadata(task.source)
+    except AudioInputError as e:
+        return None, (f"broadcast metadata not carried over: {e}",)
+    return meta, meta.notes
+
+
+def _carry_metadata(task, path, meta, *, stem, after):
+    chunks = []
+    if meta.bext is not None:
+        bits = {"PCM_16": 16, "PCM_24": 24, "PCM_32": 32, "FLOAT": 32, "DOUBLE": 64}.get(task.subtype, 24)
+        line = riff.coding_history_line(
+            rate_hz=int(task.info.rate_hz), bits=bits, channels=task.channels_out,
+            text=f"render {__version__} {stem} stem, room {task.room_name}",
+        )
+        history = meta.bext.coding_history
+        if history and not history.endswith("\r\n"):
+            history += "\r\n"
+        fields = {"coding_history": history + line, "version": max(2, meta.bext.version)}
+        if stem == "mix" and after is not None:
+            fields.update(
+                loudness_value_lufs=after["integrated_lufs"],
+                loudness_range_lu=after["loudness_range_lu"],
+                max_true_peak_level_dbtp=after["true_peak_dbtp"],
+                max_momentary_loudness_lufs=after["momentary_max_lufs"],
+                max_short_term_loudness_lufs=after["short_term_max_lufs"],
+            )
+        chunks.append(("bext", dataclasses.replace(meta.bext, **fields).to_bytes()))
+    if meta.ixml is not None:
+        chunks.append(("iXML", meta.ixml))
+    if chunks:
+        riff.insert_chunks(path, chunks)
+
+
+def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False):
     """Render one planned source and write its stems.
 
     Parameters
@@ -91,24 +267,35 @@ def render_task(task, *, output_dir):
         A task without ``error``.
     output_dir : str or Path
         The job's output folder (``task.outputs`` are relative to it).
+    gain_db : float
+        Gain applied to every stem (the normalisation), dB.
+    limit : float, optional
+        Ceiling in dBTP for the true-peak limiter on the mix; None: no limiter.
+    two_pass : bool
+        Read the wet signal from :func:`measure_task`'s temporary instead of
+        convolving again (the temporary is removed afterwards).
 
     Returns
     -------
     dict
-        The manifest entry's render facts: per stem ``path``, ``sha256``,
-        ``frames``, ``peak_dbfs``, ``clipped_samples``; ``input_sha256``;
-        ``render_s``.
+        Per stem ``path``, ``sha256``, ``frames``, ``peak_dbfs``,
+        ``clipped_samples``; ``input_sha256``; ``after`` (loudness and true
+        peak of the written mix); ``limiter_reduction_db``; ``gain_db``;
+        ``notes``; ``render_s``.
     """
     started = time.perf_counter()
     info = task.info
-    kernel = kernel_for(task)
-    dry_gain = db_to_gain(task.dry_db)
     out_ch = task.channels_out
-    total_in = info.frames
-    total_out = task.frames_out
-    fade_frames = min(int(round(CUT_FADE_S * info.rate_hz)), total_in) if task.tail == "cut" else 0
     integer_output = task.subtype.startswith("PCM")
     stems = dict(task.outputs)
+    gain = db_to_gain(gain_db)
+    meta, notes = _source_metadata(task)
+    notes = list(notes)
+    temp = temp_path_for(task, output_dir)
+    if two_pass:
+        stream = _from_temporary(task, temp, block_frames=max(4096, kernel_for(task).block_frames))
+    else:
+        stream = _convolved(task, kernel_for(task))
     for _, rel in task.outputs:
         (Path(output_dir) / rel).parent.mkdir(parents=True, exist_ok=True)
     writers = {
@@ -119,57 +306,85 @@ def render_task(task, *, output_dir):
     }
     clipped = {stem: 0 for stem in stems}
     peaks = {stem: 0.0 for stem in stems}
-    state = convolve.initial_state(kernel, channels=info.channels)
-    dry_queue = _DryQueue(out_ch)
+    meter = _Meter(info.rate_hz, out_ch)
+    dithers = {}
+    if integer_output:
+        for stem in ("mix", "wet", "dry"):
+            seed = dither.dither_seed(job_sha256=task.settings_sha256, source_key=task.key, stem=stem)
+            dithers[stem] = dither.dither_init(seed, channels=out_ch)
+    lim = limiter.limiter_init(rate_hz=info.rate_hz, channels=out_ch, ceiling_dbtp=limit) if limit is not None else None
+    pending = _Queue(2 * out_ch)
     written = 0
 
-    def emit(wet):
+    def quantise(stem, block):
+        q, dithers[stem] = dither.dither_block(block, dithers[stem], subtype=task.subtype)
+        return q
+
+    def write(dry, wet):
         nonlocal written
-        n = wet.shape[0]
+        n = dry.shape[0]
         if n == 0:
             return
-        dry = dry_queue.pop(n)
-        if task.tail == "cut":
-            n = max(0, min(n, total_in - written))
-            wet, dry = wet[:n], dry[:n]
-            if fade_frames:
-                idx = written + np.arange(n)
-                pos = idx - (total_in - fade_frames)
-                ramp = np.where(pos >= 0, 0.5 + 0.5 * np.cos(np.pi * (pos + 1) / fade_frames), 1.0)
-                wet = wet * ramp[:, None]
-        parts = {"dry": dry, "wet": wet}
-        if "mix" in stems:
-            parts["mix"] = dry + wet
+        if integer_output and "dry" in stems and "wet" in stems:
+            dry, wet = quantise("dry", dry), quantise("wet", wet)
+            mix = dry + wet
+        elif integer_output:
+            mix = quantise("mix", dry + wet)
+            if "dry" in stems:
+                dry = quantise("dry", dry)
+            if "wet" in stems:
+                wet = quantise("wet", wet)
+        else:
+            mix = dry + wet
+        parts = {"dry": dry, "wet": wet, "mix": mix}
         for stem, w in writers.items():
             block = parts[stem]
-            peak = max(float(block.max()), -float(block.min())) if block.size else 0.0
+            peak = max(float(block.max()), -float(block.min()))
             peaks[stem] = max(peaks[stem], peak)
             if integer_output and peak > 1.0:
                 clipped[stem] += int(np.count_nonzero(np.abs(block) > 1.0))
                 block = np.clip(block, -1.0, 1.0)
             w.write(block)
+        meter.update(np.clip(mix, -1.0, 1.0) if integer_output else mix)
         written += n
 
+    def gained(g):
+        both = pending.pop(g.shape[0]) * g[:, None]
+        return both[:, :out_ch], both[:, out_ch:]
+
     try:
-        for block in audio_io.read_blocks(task.source, block_frames=kernel.block_frames):
-            dry = block * dry_gain
-            if dry.shape[1] != out_ch:
-                dry = np.repeat(dry, out_ch, axis=1)
-            dry_queue.push(dry)
-            wet, state = convolve.convolve_block(block, state, kernel=kernel)
-            emit(wet)
-        if state.frames_in != total_in:
-            raise RenderError(f"{task.key}: read {state.frames_in} frames, the file's header says {total_in}")
-        tail_frames = task.tail_frames if task.tail == "extend" else 0
-        emit(convolve.flush(state, kernel=kernel, tail_frames=tail_frames))
-        if written != total_out:
-            raise OutputError(f"{task.key}: wrote {written} frames, expected {total_out}")
+        for dry, wet in stream:
+            if gain != 1.0:
+                dry, wet = dry * gain, wet * gain
+            if lim is None:
+                write(dry, wet)
+                continue
+            pending.push(np.concatenate([dry, wet], axis=1))
+            g, lim = limiter.limiter_update(dry + wet, lim)
+            if g.shape[0]:
+                write(*gained(g))
+        if lim is not None:
+            g, lim = limiter.limiter_flush(lim)
+            if g.shape[0]:
+                write(*gained(g))
+        if written != task.frames_out:
+            raise OutputError(f"{task.key}: wrote {written} frames, expected {task.frames_out}")
+        after = meter.result()
         for w in writers.values():
             w.commit()
     except BaseException:
         for w in writers.values():
             w.abort()
         raise
+    finally:
+        if two_pass:
+            try:
+                os.unlink(temp)
+            except OSError:
+                pass
+    if meta is not None:
+        for stem, rel in task.outputs:
+            _carry_metadata(task, Path(output_dir) / rel, meta, stem=stem, after=after)
     result = {"stems": {}, "input_sha256": audio_io.sha256_file(task.source)}
     for stem, rel in task.outputs:
         result["stems"][stem] = {
@@ -179,5 +394,17 @@ def render_task(task, *, output_dir):
             "peak_dbfs": round(gain_to_db(peaks[stem]), 3),
             "clipped_samples": clipped[stem],
         }
+    if any(clipped.values()):
+        notes.append("clipped: " + ", ".join(f"{s} {n} samples" for s, n in clipped.items() if n))
+    if info.subtype in ("VORBIS", "OPUS", "MPEG_LAYER_III", "MPEG_LAYER_II") or info.format in ("OGG", "MP3", "MPEG"):
+        notes.append("lossy source: the encoder's delay can shift the audio against the timeline")
+    result["after"] = after
+    result["gain_db"] = round(float(gain_db), 4)
+    result["limiter_reduction_db"] = round(limiter.limiter_result(lim).max_reduction_db, 3) if lim is not None else 0.0
+    result["metadata"] = {
+        "bext": meta is not None and meta.bext is not None,
+        "ixml": meta is not None and meta.ixml is not None,
+    }
+    result["notes"] = notes
     result["render_s"] = round(time.perf_counter() - started, 4)
     return result
