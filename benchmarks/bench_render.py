@@ -31,7 +31,7 @@ output = "out"
 decay_s = 2.5
 size_m = [20.0, 14.0, 8.0]
 [[sources]]
-files = ["in.wav"]
+files = ["in/in.wav"]
 room = "hall"
 """
 
@@ -119,9 +119,9 @@ def main():
     os.environ.setdefault("OMP_NUM_THREADS", "1")
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp) / "speed"
-        folder.mkdir()
+        (folder / "in").mkdir(parents=True)
         (folder / "job.toml").write_text(JOB)
-        make_source(folder / "in.wav", args.minutes)
+        make_source(folder / "in" / "in.wav", args.minutes)
         runs = [render_once(folder) for _ in range(args.repeats)]
         r = runs[0]
         render_s = statistics.median(x["render_s"] for x in runs)
@@ -140,9 +140,9 @@ def main():
               f"end to end / limit = {render_s / limit:.2f}")
         for minutes in args.memory_minutes:
             mfolder = Path(tmp) / f"mem{minutes:g}"
-            mfolder.mkdir()
+            (mfolder / "in").mkdir(parents=True)
             (mfolder / "job.toml").write_text(JOB)
-            make_source(mfolder / "in.wav", minutes)
+            make_source(mfolder / "in" / "in.wav", minutes)
             m = render_once(mfolder)
             print(f"peak RSS, {minutes:g} min stereo: {m['rss_kib'] / 1024:.0f} MB")
             for p in mfolder.rglob("*.wav"):

@@ -21,7 +21,7 @@ from pathlib import Path
 from . import audio_io
 from .errors import RenderError
 from .manifest import new_manifest, read_manifest, write_json_atomic
-from .errors import ParameterError
+from .errors import OutputError, ParameterError
 from .plan import MANIFEST_NAME, response_files
 from .delivery import decide_gain
 from .loudness import integrated_over
@@ -160,6 +160,107 @@ def _remove_tree(folder):
             folder.rmdir()
         except OSError:
             pass
+
+
+class _Lock:
+    """One run per output folder: a lock file naming the holder; a dead holder's lock is taken over."""
+
+    def __init__(self, folder, name):
+        self.path = Path(folder) / name
+        self.held = False
+
+    def __enter__(self):
+        import json
+        import socket
+
+        host = socket.gethostname()
+        for _ in range(2):
+            try:
+                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+            except FileExistsError:
+                try:
+                    holder = json.loads(self.path.read_text(encoding="utf-8"))
+                except (OSError, ValueError):
+                    holder = {}
+                pid, where = holder.get("pid"), holder.get("host")
+                if where == host and isinstance(pid, int) and not _alive(pid):
+                    _remove(self.path)  # stale: its process is gone
+                    continue
+                raise OutputError(
+                    f"{self.path.parent}: another render is running here (pid {pid} on {where}, since "
+                    f"{holder.get('started', '?')}); if it is not, remove {self.path}"
+                ) from None
+            with os.fdopen(fd, "w", encoding="utf-8") as f:
+                json.dump({"pid": os.getpid(), "host": host,
+                           "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}, f)
+            self.held = True
+            return self
+        raise OutputError(f"{self.path}: cannot take the lock")
+
+    def __exit__(self, *exc):
+        if self.held:
+            _remove(self.path)
+            self.held = False
+
+
+def _alive(pid):
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _clean_leftovers(folder):
+    """Remove temporaries (``.*.part``) that a killed run left in the output folder."""
+    removed = 0
+    for p in Path(folder).rglob(".*.part"):
+        if p.is_file():
+            _remove(p)
+            removed += 1
+    _remove_tree(Path(folder) / ".render-tmp")
+    return removed
+
+
+class _Journal:
+    """Finished entries, appended and fsync'd one per line, so a killed run loses nothing it finished."""
+
+    def __init__(self, path):
+        self.path = Path(path)
+        self.f = None
+
+    def read(self):
+        import json
+
+        out = []
+        try:
+            with open(self.path, encoding="utf-8") as f:
+                for line in f:
+                    try:
+                        out.append(json.loads(line))
+                    except ValueError:
+                        pass  # a line cut short by a kill
+        except OSError:
+            pass
+        return out
+
+    def append(self, entry):
+        import json
+
+        if self.f is None:
+            self.f = open(self.path, "a", encoding="utf-8")
+        self.f.write(json.dumps(entry, separators=(",", ":")) + "\n")
+        self.f.flush()
+        os.fsync(self.f.fileno())
+
+    def close(self, *, remove):
+        if self.f is not None:
+            self.f.close()
+            self.f = None
+        if remove:
+            _remove(self.path)
 
 
 class _Progress:
@@ -314,10 +415,27 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False, shard=None, schedule
             owners = assign_shards([task_weight(t) for t in plan.tasks], shards=n)
         selected = [i for i in selected if owners[i] == k - 1]
         manifest_path = out_dir / shard_manifest_name(k, n)
+    lock = _Lock(out_dir, ".render.lock" if shard is None else f".render.shard-{shard[0]}-of-{shard[1]}.lock")
+    with lock:
+        return _run_locked(plan, out_dir, manifest_path, selected, jobs=jobs, quiet=quiet, resume=resume,
+                           shard=shard, scheduler=scheduler)
+
+
+def _run_locked(plan, out_dir, manifest_path, selected, *, jobs, quiet, resume, shard, scheduler):
+    job = plan.job
+    if shard is None:
+        _clean_leftovers(out_dir)
+    journal = _Journal(manifest_path.with_suffix(".journal.jsonl"))
     old = None
     if resume:
         old = read_manifest(manifest_path) or (read_manifest(out_dir / MANIFEST_NAME) if shard else None)
     old_by_key = {(e["source"], e["group"]): e for e in (old or {}).get("sources", [])}
+    if resume:
+        for e in journal.read():  # entries a killed run finished after its last manifest
+            if isinstance(e, dict) and "source" in e and "group" in e:
+                old_by_key[(e["source"], e["group"])] = e
+    else:
+        journal.close(remove=True)
     manifest = new_manifest(job, engine_version=ENGINE_VERSION)
     if shard is not None:
         manifest["shard"] = {"k": shard[0], "n": shard[1]}
@@ -376,6 +494,8 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False, shard=None, schedule
         ok = status == "rendered"
         entries[i] = _entry(t, status, facts=payload if ok else None, error=None if ok else payload)
         entries[i]["loudness"] = _loudness_entry(spec, payload if ok else None, before, decision)
+        if ok:
+            journal.append(entries[i])
 
     limit = spec.ceiling_dbtp if (spec.ceiling_dbtp is not None and spec.over_ceiling == "limit") else None
     try:
@@ -441,4 +561,5 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False, shard=None, schedule
         "interrupted": interrupted,
     }
     write_json_atomic(manifest_path, manifest)
+    journal.close(remove=True)
     return result

@@ -148,7 +148,6 @@ VERDICTS = ("ok", "uncertain", "not measurable")
 JND_PCT = 5.0
 
 # ----------------------------------------------------------------- speech: choices
-BAND_ORDER = 3
 #: Energy block of the envelope (the downsampled signal of the estimator), s.
 BLOCK_S = 0.005
 #: Shortest speech recording analysed, s.
@@ -161,6 +160,8 @@ MIN_RUN_S = 0.1
 MIN_SUBFRAMES = 3
 #: The fitted part of a decay spans at least this much (dB).
 MIN_FIT_DB = 10.0
+#: Decays whose fitted part spans at least this much (dB) are preferred (T30 spans 30 dB).
+DEEP_FIT_DB = 25.0
 #: The fit starts this far into the reverberant decay (ISO 3382-1: T20 and T30 start at -5 dB).
 SKIP_DB = 5.0
 #: A sub-frame this far off the fitted line (either way) is not yet free decay (dB).
@@ -189,7 +190,7 @@ OK_DECAYS = 6
 #: A spread (interquartile range, % of the median) above this makes a band uncertain.
 OK_SPREAD_PCT = 20.0
 #: Decays faster than this (T60, s) cannot be told from the talker's own offsets.
-MIN_SPEECH_DECAY_S = 0.15
+MIN_SPEECH_DECAY_S = 0.2
 #: Window before an offset whose mean power is taken as direct plus reverberant sound, s.
 DRR_WINDOW_S = 0.1
 #: A DRR is reported from at least this many decays whose DRRs have at most this IQR (dB).
@@ -769,7 +770,7 @@ def _band_decays(energy, band_hz, dt):
 
 def _band_energy(x, band_hz, rate, block):
     """Block energies of one octave band, summed over channels (time-reversed filtering)."""
-    sos = analysis.octave_band_sos(band_hz, rate_hz=rate, order=BAND_ORDER)
+    sos = analysis.octave_band_sos(band_hz, rate_hz=rate)
     y = scipy.signal.sosfilt(sos, x[::-1], axis=0)
     return _frame_energies(np.einsum("ij,ij->i", y, y)[::-1], block)
 
@@ -786,6 +787,9 @@ def _speech_verdict(band_hz, found, dt):
         else:
             reason = f"no free decays: no fall of {MIN_FALL_DB:g} dB over {MIN_SUBFRAMES} sub-frames"
         return FitBand(band_hz, None, 0, None, "not measurable", reason)
+    deep = np.array([d.fit_db >= DEEP_FIT_DB for d in found.decays])
+    if np.count_nonzero(deep) >= MIN_DECAYS:
+        t60 = t60[deep]
     value = float(np.median(t60))
     spread = 100.0 * float(np.subtract(*np.percentile(t60, [75, 25]))) / value if t60.size >= 2 else None
     if value < MIN_SPEECH_DECAY_S:

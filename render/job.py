@@ -74,6 +74,8 @@ SCHEMA: Dict[str, Dict[str, str]] = {
         "tail_floor_db": "where a room's tail is cut, dB re its envelope's peak (-150 to -20; default -90)",
         "name_pattern": 'output name without extension; fields {dir} {name} {stem} {room} {group} '
         '(default "{dir}/{name}.{stem}")',
+        "allow_output_in_sources": "true lets the output folder lie inside a source's folder (default false: "
+        "refused, so renders never mix with the originals)",
     },
     "rooms.NAME": dict(_ROOM_KEYS),
     "mix": {
@@ -153,6 +155,7 @@ class Job:
     tail: str
     tail_floor_db: float
     name_pattern: str
+    allow_output_in_sources: bool
     rooms: Dict[str, Room]
     groups: Tuple[SourceGroup, ...]
     loudness: LoudnessSpec = LoudnessSpec()
@@ -355,6 +358,9 @@ def parse_job(text, *, path):
     tail = check.string("job.tail", job_t.get("tail", "extend"), choices=TAILS)
     floor = check.number("job.tail_floor_db", job_t.get("tail_floor_db", -90.0), lo=-150.0, hi=-20.0, unit="dB")
     pattern = _check_pattern(check, check.string("job.name_pattern", job_t.get("name_pattern", "{dir}/{name}.{stem}")))
+    allow_in_sources = job_t.get("allow_output_in_sources", False)
+    if not isinstance(allow_in_sources, bool):
+        check.fail("job.allow_output_in_sources", allow_in_sources, "must be true or false")
 
     rooms_t = check.table("rooms", data.get("rooms", {}))
     rooms = {}
@@ -420,6 +426,7 @@ def parse_job(text, *, path):
         tail=tail,
         tail_floor_db=floor,
         name_pattern=pattern,
+        allow_output_in_sources=allow_in_sources,
         rooms=rooms,
         groups=tuple(groups),
         loudness=loudness,

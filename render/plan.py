@@ -248,6 +248,30 @@ def plan_job(job: Job, *, synthesize_rooms=True):
                 notes=tuple(notes),
             )
         )
+    rates = {}
+    for t in tasks:
+        if t.info is not None:
+            rates.setdefault(t.group, set()).add(t.info.rate_hz)
+    mixed = {g: r for g, r in rates.items() if len(r) > 1}
+    if mixed:
+        tasks = [
+            t if t.group not in mixed else Task(**{**t.__dict__, "notes": t.notes + (
+                "sample rates differ within this group (" + ", ".join(f"{r:g}" for r in sorted(mixed[t.group]))
+                + " Hz): each file keeps its own",)})
+            for t in tasks
+        ]
+    # Inputs are sacred: no output may be a source, and the output folder may not lie in a
+    # source's folder unless the job says so.
+    source_dirs = {}
+    for t in tasks:
+        source_dirs.setdefault(str(Path(t.source).resolve().parent), t.key)
+    for folder, key in sorted(source_dirs.items()):
+        if not job.allow_output_in_sources and (out_root == Path(folder) or Path(folder) in out_root.parents):
+            raise JobError(
+                f"{job.path}: job.output = \"{job.output_dir}\": lies inside the folder of source {key} "
+                f"({folder}); choose another folder, or set job.allow_output_in_sources = true"
+            )
+    sources = {str(Path(t.source).resolve()) for t in tasks}
     # Two sources writing one file would silently lose one of them.
     owner = {}
     for t in tasks:
@@ -255,6 +279,8 @@ def plan_job(job: Job, *, synthesize_rooms=True):
             target = str((out_root / rel).resolve())
             if not target.startswith(str(out_root) + os.sep):
                 raise JobError(f"{job.path}: output \"{rel}\" of {t.key} resolves outside the output folder")
+            if target in sources:
+                raise JobError(f"{job.path}: output \"{rel}\" of {t.key} is a source file: refused")
             if target in owner and owner[target] != t.key:
                 raise JobError(
                     f"{job.path}: {owner[target]} and {t.key} would both write \"{rel}\": "

@@ -106,6 +106,36 @@ class _Queue:
         return out
 
 
+class _SourceCheck:
+    """Looks at every source block: refuses NaN or infinite samples, notes DC and clipping."""
+
+    def __init__(self, task):
+        self.task = task
+        self.frames = 0
+        self.total = np.zeros(task.info.channels)
+        self.full_scale = 0
+
+    def __call__(self, block):
+        if not np.all(np.isfinite(block)):
+            bad = int(np.argwhere(~np.isfinite(block))[0][0])
+            raise AudioInputError(f"{self.task.key}: NaN or infinite sample at frame {self.frames + bad}: "
+                                  "expected finite audio")
+        self.total += block.sum(axis=0)
+        self.full_scale += int(np.count_nonzero(np.abs(block) >= 1.0 - 2.0**-15))
+        self.frames += block.shape[0]
+        return block
+
+    def notes(self):
+        out = []
+        if self.frames:
+            dc = np.abs(self.total / self.frames).max()
+            if dc > 10 ** (-40 / 20):
+                out.append(f"source has a DC offset of {gain_to_db(dc):.1f} dBFS")
+        if self.full_scale:
+            out.append(f"source already clipped: {self.full_scale} samples at full scale")
+        return out
+
+
 def _dry(block, task):
     dry = block * db_to_gain(task.dry_db)
     if dry.shape[1] != task.channels_out:
@@ -113,7 +143,7 @@ def _dry(block, task):
     return dry
 
 
-def _convolved(task, kernel):
+def _convolved(task, kernel, check=None):
     """(dry, wet) blocks, aligned, ``task.frames_out`` frames in all, cut fade applied."""
     info = task.info
     total_in = info.frames
@@ -137,6 +167,8 @@ def _convolved(task, kernel):
         return dry, wet
 
     for block in audio_io.read_blocks(task.source, block_frames=kernel.block_frames):
+        if check is not None:
+            check(block)
         queue.push(_dry(block, task))
         wet, state = convolve.convolve_block(block, state, kernel=kernel)
         if wet.shape[0]:
@@ -148,13 +180,15 @@ def _convolved(task, kernel):
         yield pair(last)
 
 
-def _from_temporary(task, temp, block_frames):
+def _from_temporary(task, temp, block_frames, check=None):
     """(dry, wet) blocks from the source and the wet temporary of :func:`measure_task`."""
     with sf.SoundFile(str(temp)) as wet_file:
         if wet_file.frames != task.frames_out:
             raise RenderError(f"{task.key}: temporary {temp} has {wet_file.frames} frames, expected {task.frames_out}")
         done = 0
         for block in audio_io.read_blocks(task.source, block_frames=block_frames):
+            if check is not None:
+                check(block)
             dry = _dry(block, task)
             wet = wet_file.read(dry.shape[0], dtype="float64", always_2d=True)
             done += dry.shape[0]
@@ -215,7 +249,7 @@ def measure_task(task, *, output_dir):
     meter = _Meter(task.info.rate_hz, task.channels_out)
     with audio_io.BlockWriter(temp, rate_hz=task.info.rate_hz, channels=task.channels_out, format="WAV",
                               subtype="DOUBLE") as w:
-        for dry, wet in _convolved(task, kernel):
+        for dry, wet in _convolved(task, kernel, _SourceCheck(task)):
             meter.update(dry + wet)
             w.write(wet)
     return {"before": meter.result(), "hops": meter.hops(), "hop_frames": meter.loud.hop_frames}
@@ -292,10 +326,11 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False):
     meta, notes = _source_metadata(task)
     notes = list(notes)
     temp = temp_path_for(task, output_dir)
+    check = _SourceCheck(task)
     if two_pass:
-        stream = _from_temporary(task, temp, block_frames=max(4096, kernel_for(task).block_frames))
+        stream = _from_temporary(task, temp, block_frames=max(4096, kernel_for(task).block_frames), check=check)
     else:
-        stream = _convolved(task, kernel_for(task))
+        stream = _convolved(task, kernel_for(task), check)
     for _, rel in task.outputs:
         (Path(output_dir) / rel).parent.mkdir(parents=True, exist_ok=True)
     writers = {
@@ -394,6 +429,9 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False):
             "peak_dbfs": round(gain_to_db(peaks[stem]), 3),
             "clipped_samples": clipped[stem],
         }
+    notes.extend(check.notes())
+    if after["integrated_lufs"] is None and after["reason"]:
+        notes.append(f"loudness {after['reason']}")
     if any(clipped.values()):
         notes.append("clipped: " + ", ".join(f"{s} {n} samples" for s, n in clipped.items() if n))
     if info.subtype in ("VORBIS", "OPUS", "MPEG_LAYER_III", "MPEG_LAYER_II") or info.format in ("OGG", "MP3", "MPEG"):

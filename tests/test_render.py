@@ -206,11 +206,12 @@ def test_peak_memory_does_not_grow_with_length(tmp_path):
     for label, seconds in (("short", 5), ("long", 180)):
         folder = tmp_path / label
         frames = seconds * 48000
-        with sf.SoundFile(str(folder / "in.wav") if folder.mkdir() is None else "", "w", 48000, 2, "PCM_24") as f:
+        (folder / "in").mkdir(parents=True)
+        with sf.SoundFile(str(folder / "in" / "in.wav"), "w", 48000, 2, "PCM_24") as f:
             for start in range(0, frames, 480000):
                 n = min(480000, frames - start)
                 f.write(rng.standard_normal((n, 2)) * 0.05)
-        (folder / "job.toml").write_text(job_text(["in.wav"]))
+        (folder / "job.toml").write_text(job_text(["in/in.wav"]))
         out = subprocess.run([sys.executable, "-c", MEMORY_SCRIPT, str(folder / "job.toml")],
                              capture_output=True, text=True, check=True, env={**os.environ})
         rss[label] = int(out.stdout.strip().splitlines()[-1])
