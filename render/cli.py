@@ -85,9 +85,23 @@ def build_parser():
     p.add_argument("-o", "--output", required=True, metavar="FILE.wav", help="where to write the response")
     p.add_argument("--quiet", action="store_true", help="print nothing but errors")
 
+    p = sub.add_parser("fit", help="describe a room from a recording made in it (impulse response or speech)")
+    p.add_argument("recording", metavar="RECORDING.wav", nargs="?", help="a recording made in the room")
+    p.add_argument("--name", default="fitted", metavar="ROOM", help="name of the [rooms.NAME] table (default 'fitted')")
+    p.add_argument("-o", "--output", metavar="room.toml", help="also write the table to this file")
+    p.add_argument("--compare", nargs=2, metavar=("A.wav", "B.wav"), help="the estimates of two recordings side by side")
+
     p = sub.add_parser("analyze", help="ISO 3382-1 measures of an impulse response")
     p.add_argument("file", metavar="FILE.wav", help="an impulse response (ours or measured)")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    p.add_argument("--plot", metavar="OUT.png", help="also draw the response, its decay and its bands (needs 'plots')")
+
+    p = sub.add_parser("report", help="write report.html (and PNGs) for a rendered output folder")
+    p.add_argument("output", metavar="OUTDIR", help="the job's output folder (with manifest.json)")
+
+    p = sub.add_parser("bench", help="measure speed and memory on material generated here")
+    p.add_argument("--minutes", type=float, default=None, metavar="M", help="length of the main test file")
+    p.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     return parser
 
 
@@ -161,6 +175,28 @@ def _cmd_analyze(args):
     else:
         print(f"{args.file}: {rate} Hz, {ir.shape[1]} ch, {ir.shape[0] / rate:.3f} s")
         print(result.format_table())
+    if args.plot:
+        from .report_html import analyze_plot
+
+        analyze_plot(args.file, args.plot)
+        if not args.json:
+            print(f"plot: {args.plot}")
+    return EXIT_OK
+
+
+def _cmd_report(args):
+    from .report_html import write_report
+
+    print(write_report(args.output))
+    return EXIT_OK
+
+
+def _cmd_bench(args):
+    from .bench import format_bench, run_bench
+
+    kwargs = {} if args.minutes is None else {"minutes": args.minutes}
+    results = run_bench(json_path=args.json, **kwargs)
+    print(format_bench(results))
     return EXIT_OK
 
 
@@ -190,6 +226,12 @@ def _cmd_run(args):
     if not args.quiet:
         print(f"{plan.job.output_dir}: {result.rendered} rendered, {result.skipped} skipped, "
               f"{result.failed} failed")
+    if plan.job.report and shard is None and not result.interrupted:
+        from .report_html import write_report
+
+        path = write_report(plan.job.output_dir)
+        if not args.quiet:
+            print(f"report: {path}")
     for entry in result.manifest["sources"]:
         if entry["status"] == "failed":
             print(f"render: failed: {entry['error']}", file=sys.stderr)
@@ -214,7 +256,40 @@ def _cmd_merge(args):
     return EXIT_PARTIAL if problems or s["failed"] else EXIT_OK
 
 
+def _cmd_fit(args):
+    from .audio_io import read_all
+    from .fit import compare, fit_recording, format_compare, format_fit, room_table
+
+    if args.compare:
+        results = []
+        for path in args.compare:
+            signal, rate = read_all(path)
+            results.append(fit_recording(signal, rate_hz=float(rate)))
+        print(f"A = {args.compare[0]}\nB = {args.compare[1]}")
+        print(format_compare(compare(results[0], results[1])))
+        return EXIT_OK
+    if not args.recording:
+        raise ParameterError("render fit: give RECORDING.wav, or --compare A.wav B.wav")
+    signal, rate = read_all(args.recording)
+    result = fit_recording(signal, rate_hz=float(rate))
+    print(format_fit(result))
+    table = room_table(result, name=args.name)
+    print()
+    print(table)
+    if args.output:
+        from pathlib import Path
+
+        try:
+            Path(args.output).write_text(table + "\n", encoding="utf-8")
+        except OSError as e:
+            raise OutputError(f"{args.output}: cannot write ({e.strerror or e})") from None
+    return EXIT_OK
+
+
 _COMMANDS = {
+    "report": _cmd_report,
+    "bench": _cmd_bench,
+    "fit": _cmd_fit,
     "run": _cmd_run,
     "merge": _cmd_merge,
     "check": _cmd_check,

@@ -74,6 +74,8 @@ SCHEMA: Dict[str, Dict[str, str]] = {
         "tail_floor_db": "where a room's tail is cut, dB re its envelope's peak (-150 to -20; default -90)",
         "name_pattern": 'output name without extension; fields {dir} {name} {stem} {room} {group} '
         '(default "{dir}/{name}.{stem}")',
+        "report": "true writes report.html (and PNGs) into the output folder at the end of a run; "
+        "needs the plots extra (default false)",
         "allow_output_in_sources": "true lets the output folder lie inside a source's folder (default false: "
         "refused, so renders never mix with the originals)",
     },
@@ -159,6 +161,7 @@ class Job:
     rooms: Dict[str, Room]
     groups: Tuple[SourceGroup, ...]
     loudness: LoudnessSpec = LoudnessSpec()
+    report: bool = False
 
     @property
     def base_dir(self) -> Path:
@@ -358,6 +361,9 @@ def parse_job(text, *, path):
     tail = check.string("job.tail", job_t.get("tail", "extend"), choices=TAILS)
     floor = check.number("job.tail_floor_db", job_t.get("tail_floor_db", -90.0), lo=-150.0, hi=-20.0, unit="dB")
     pattern = _check_pattern(check, check.string("job.name_pattern", job_t.get("name_pattern", "{dir}/{name}.{stem}")))
+    report = job_t.get("report", False)
+    if not isinstance(report, bool):
+        check.fail("job.report", report, "must be true or false")
     allow_in_sources = job_t.get("allow_output_in_sources", False)
     if not isinstance(allow_in_sources, bool):
         check.fail("job.allow_output_in_sources", allow_in_sources, "must be true or false")
@@ -430,6 +436,7 @@ def parse_job(text, *, path):
         rooms=rooms,
         groups=tuple(groups),
         loudness=loudness,
+        report=report,
     )
     for g in job.groups:  # distance_m must fit the group's room
         job.room_for(g)
