@@ -534,7 +534,8 @@ def _run_locked(plan, out_dir, manifest_path, selected, *, jobs, quiet, resume, 
                     record(i, "failed", f"{plan.tasks[i].key}: {d.fail}", measured[i]["before"], d)
                     continue
                 calls.append((i, "render", {"gain_db": d.gain_db, "limit": spec.ceiling_dbtp if d.limit else None,
-                                            "two_pass": True}))
+                                            "two_pass": True,
+                                            "target_lufs": spec.target_lufs if spec.normalize == "file" else None}))
             for i, status, payload in execute(calls):
                 record(i, status, payload, measured[i]["before"], decisions[i])
     except KeyboardInterrupt:

@@ -230,6 +230,13 @@ class _Meter:
         return s._hops.buf[: s._hop_count].tolist()
 
 
+def _unlink(path):
+    try:
+        os.unlink(path)
+    except OSError:
+        pass
+
+
 def _round(value, digits=4):
     return None if value is None else round(float(value), digits)
 
@@ -256,12 +263,16 @@ def measure_task(task, *, output_dir):
 
 
 def _source_metadata(task):
-    if task.info.format not in ("WAV", "RF64") or task.format not in ("WAV", "RF64"):
+    if task.info.format not in ("WAV", "RF64"):
         return None, ()
     try:
         meta = riff.read_metadata(task.source)
     except AudioInputError as e:
         return None, (f"broadcast metadata not carried over: {e}",)
+    if task.format not in ("WAV", "RF64"):
+        found = [n for n, v in (("bext", meta.bext), ("iXML", meta.ixml)) if v is not None]
+        return None, ((f"source's {' and '.join(found)} not carried over: {task.format} output has no place "
+                       "for them",) if found else ())
     return meta, meta.notes
 
 
@@ -277,6 +288,10 @@ def _carry_metadata(task, path, meta, *, stem, after):
         if history and not history.endswith("\r\n"):
             history += "\r\n"
         fields = {"coding_history": history + line, "version": max(2, meta.bext.version)}
+        # Loudness fields describe the file itself: only the mix is metered, so the dry and wet
+        # stems say "not set" rather than repeat the source's figures.
+        fields.update(loudness_value_lufs=None, loudness_range_lu=None, max_true_peak_level_dbtp=None,
+                      max_momentary_loudness_lufs=None, max_short_term_loudness_lufs=None)
         if stem == "mix" and after is not None:
             fields.update(
                 loudness_value_lufs=after["integrated_lufs"],
@@ -292,7 +307,13 @@ def _carry_metadata(task, path, meta, *, stem, after):
         riff.insert_chunks(path, chunks)
 
 
-def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False):
+#: With a target and the limiter, the written mix may read low by what limiting took; passes are
+#: repeated with the difference added until it reads within this many LU (at most MAKEUP_PASSES).
+MAKEUP_TOLERANCE_LU = 0.05
+MAKEUP_PASSES = 3
+
+
+def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, target_lufs=None, _attempt=1):
     """Render one planned source and write its stems.
 
     Parameters
@@ -308,6 +329,10 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False):
     two_pass : bool
         Read the wet signal from :func:`measure_task`'s temporary instead of
         convolving again (the temporary is removed afterwards).
+    target_lufs : float, optional
+        With ``two_pass`` and ``limit``: when the written mix reads more than
+        :data:`MAKEUP_TOLERANCE_LU` off the target (limiting lowers loudness),
+        render again with the difference added (at most :data:`MAKEUP_PASSES`).
 
     Returns
     -------
@@ -411,12 +436,22 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False):
         for w in writers.values():
             w.abort()
         raise
-    finally:
+    except BaseException:
         if two_pass:
-            try:
-                os.unlink(temp)
-            except OSError:
-                pass
+            _unlink(temp)
+        raise
+    if (
+        two_pass
+        and limit is not None
+        and target_lufs is not None
+        and after["integrated_lufs"] is not None
+        and abs(after["integrated_lufs"] - target_lufs) > MAKEUP_TOLERANCE_LU
+        and _attempt < MAKEUP_PASSES
+    ):
+        return render_task(task, output_dir=output_dir, gain_db=gain_db + (target_lufs - after["integrated_lufs"]),
+                           limit=limit, two_pass=True, target_lufs=target_lufs, _attempt=_attempt + 1)
+    if two_pass:
+        _unlink(temp)
     if meta is not None:
         for stem, rel in task.outputs:
             _carry_metadata(task, Path(output_dir) / rel, meta, stem=stem, after=after)
@@ -444,5 +479,6 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False):
         "ixml": meta is not None and meta.ixml is not None,
     }
     result["notes"] = notes
+    result["passes"] = _attempt
     result["render_s"] = round(time.perf_counter() - started, 4)
     return result
