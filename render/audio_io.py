@@ -475,6 +475,7 @@ class BlockWriter:
                 f"{self.path}: cannot write {self.format} {self.subtype}, {self.channels} channels at "
                 f"{self.rate_hz} Hz: {_reason(exc)}"
             ) from exc
+        _no_peak_chunk(self._sf)
         self._state = "open"
 
     # -- context manager -------------------------------------------------
@@ -619,6 +620,20 @@ def write_response(path, ir, *, rate_hz):
     with BlockWriter(path, rate_hz=rate_hz, channels=ir.shape[1], format=format, subtype="FLOAT") as w:
         w.write(ir)
     return w.path
+
+
+#: libsndfile's command that turns off the PEAK chunk of float files (sndfile.h: SFC_SET_ADD_PEAK_CHUNK).
+_SFC_SET_ADD_PEAK_CHUNK = 0x1050
+
+
+def _no_peak_chunk(soundfile_obj):
+    """Ask libsndfile not to write a PEAK chunk: it holds a time stamp, so the same render would
+    give different bytes a second later.  Must run before the first frame is written."""
+    try:
+        soundfile_obj._check_if_closed()
+        sf._snd.sf_command(soundfile_obj._file, _SFC_SET_ADD_PEAK_CHUNK, sf._ffi.NULL, 0)
+    except (AttributeError, TypeError):  # another soundfile build: keep its default
+        pass
 
 
 def sha256_file(path, *, chunk_bytes=1 << 20):

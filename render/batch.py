@@ -11,6 +11,7 @@
 from __future__ import annotations
 
 import concurrent.futures as cf
+import tempfile
 import multiprocessing
 import os
 import sys
@@ -174,33 +175,52 @@ class _Lock:
         import socket
 
         host = socket.gethostname()
+        # The lock appears complete or not at all: written to a temporary, then hard-linked into place.
+        fd, tmp = tempfile.mkstemp(prefix=".render.lock.", suffix=".part", dir=str(self.path.parent))
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            json.dump({"pid": os.getpid(), "host": host,
+                       "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}, f)
+        try:
+            self._take(tmp, host)
+        finally:
+            _remove(tmp)
+        return self
+
+    def _take(self, tmp, host):
+        import json
+
         for _ in range(2):
             try:
-                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+                os.link(tmp, self.path)
             except FileExistsError:
                 try:
                     holder = json.loads(self.path.read_text(encoding="utf-8"))
                 except (OSError, ValueError):
                     holder = {}
                 pid, where = holder.get("pid"), holder.get("host")
-                if where == host and isinstance(pid, int) and not _alive(pid):
+                unreadable_and_old = not holder and time.time() - _mtime(self.path) > 60.0
+                if unreadable_and_old or (where == host and isinstance(pid, int) and not _alive(pid)):
                     _remove(self.path)  # stale: its process is gone
                     continue
                 raise OutputError(
                     f"{self.path.parent}: another render is running here (pid {pid} on {where}, since "
                     f"{holder.get('started', '?')}); if it is not, remove {self.path}"
                 ) from None
-            with os.fdopen(fd, "w", encoding="utf-8") as f:
-                json.dump({"pid": os.getpid(), "host": host,
-                           "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}, f)
             self.held = True
-            return self
+            return
         raise OutputError(f"{self.path}: cannot take the lock")
 
     def __exit__(self, *exc):
         if self.held:
             _remove(self.path)
             self.held = False
+
+
+def _mtime(path):
+    try:
+        return os.stat(path).st_mtime
+    except OSError:
+        return time.time()
 
 
 def _alive(pid):

@@ -181,9 +181,14 @@ class Job:
         return room
 
 
+def _clean(text):
+    """A string for a one-line message: control characters escaped."""
+    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in str(text))
+
+
 def _show(value):
     if isinstance(value, str):
-        return f'"{value}"'
+        return f'"{_clean(value)}"'
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, (list, tuple)):
@@ -198,10 +203,10 @@ class _Checker:
         self.path = path
 
     def fail(self, key, value, expected):
-        raise JobError(f"{self.path}: {key} = {_show(value)}: {expected}")
+        raise JobError(f"{self.path}: {_clean(key)} = {_show(value)}: {_clean(expected)}")
 
     def fail_key(self, key, expected):
-        raise JobError(f"{self.path}: {key}: {expected}")
+        raise JobError(f"{self.path}: {_clean(key)}: {_clean(expected)}")
 
     def table(self, key, value):
         if not isinstance(value, dict):
@@ -307,9 +312,13 @@ def _parse_loudness(check, table):
 
 def _check_pattern(check, pattern):
     try:
-        names = [f for _, f, _, _ in string.Formatter().parse(pattern) if f is not None]
+        parsed = [(f, spec, conv) for _, f, spec, conv in string.Formatter().parse(pattern) if f is not None]
     except ValueError as e:
         check.fail("job.name_pattern", pattern, f"is not a valid pattern ({e})")
+    names = [f for f, _, _ in parsed]
+    for f, spec, conv in parsed:
+        if spec or conv:
+            check.fail("job.name_pattern", pattern, f"{{{f}}}: conversions (!) and format specs (:) are not allowed")
     for n in names:
         if n not in PATTERN_FIELDS:
             check.fail(

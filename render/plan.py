@@ -201,13 +201,16 @@ def plan_job(job: Job, *, synthesize_rooms=True):
         frames_out = info.frames + (tail_frames if job.tail == "extend" else 0)
         notes = []
         try:
+            # The container and subtype first (their message names the file), then the size decides RF64.
+            fmt, subtype = audio_io.output_format(
+                requested_format=job.format, requested_subtype=job.subtype, source=info, predicted_bytes=0
+            )
             fmt, subtype = audio_io.output_format(
                 requested_format=job.format,
-                requested_subtype=job.subtype,
+                requested_subtype=subtype,
                 source=info,
                 predicted_bytes=audio_io.predicted_bytes(
-                    frames=frames_out, channels=channels_out, subtype=info.subtype if job.subtype == "same" else job.subtype,
-                    format=job.format,
+                    frames=frames_out, channels=channels_out, subtype=subtype, format=fmt
                 ),
             )
         except OutputError as e:

@@ -142,6 +142,9 @@ class Room:
     def __post_init__(self):
         if not isinstance(self.name, str) or not self.name:
             _fail("name", self.name, "must be a non-empty string")
+        for text_field in ("description", "reference"):
+            if not isinstance(getattr(self, text_field), str):
+                _fail(text_field, getattr(self, text_field), "must be text")
         size = self.size_m
         if not (isinstance(size, (tuple, list)) and len(size) == 3 and all(_is_number(v) for v in size)):
             _fail("size_m", size, "must be three numbers [length, width, height] in metres")
