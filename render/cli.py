@@ -192,10 +192,11 @@ def _cmd_report(args):
 
 
 def _cmd_bench(args):
-    from .bench import format_bench, run_bench
+    from .bench import format_bench, run_bench  # noqa: I001
 
-    kwargs = {} if args.minutes is None else {"minutes": args.minutes}
-    results = run_bench(json_path=args.json, **kwargs)
+    from .bench import DEFAULT_MINUTES
+
+    results = run_bench(minutes=DEFAULT_MINUTES if args.minutes is None else args.minutes, json_path=args.json)
     print(format_bench(results))
     return EXIT_OK
 

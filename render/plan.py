@@ -207,7 +207,7 @@ def plan_job(job: Job, *, synthesize_rooms=True):
             )
             fmt, subtype = audio_io.output_format(
                 requested_format=job.format,
-                requested_subtype=subtype,
+                requested_subtype=job.subtype,
                 source=info,
                 predicted_bytes=audio_io.predicted_bytes(
                     frames=frames_out, channels=channels_out, subtype=subtype, format=fmt
