@@ -421,7 +421,7 @@ class BlockWriter:
     >>> import shutil; shutil.rmtree(folder)
     """
 
-    def __init__(self, path, *, rate_hz, channels, format, subtype):
+    def __init__(self, path, *, rate_hz, channels, format, subtype, tags=None):
         self.path = os.fspath(path)
         self.frames_written = 0
         self.peak = 0.0
@@ -476,6 +476,11 @@ class BlockWriter:
                 f"{self.rate_hz} Hz: {_reason(exc)}"
             ) from exc
         _no_peak_chunk(self._sf)
+        for name, value in (tags or {}).items():
+            try:
+                setattr(self._sf, name, value)  # libsndfile's text tags (title, artist, comment, ...)
+            except (_SOUNDFILE_ERRORS + (AttributeError, TypeError)):
+                pass  # a container without that tag: nothing to keep it in
         self._state = "open"
 
     # -- context manager -------------------------------------------------
@@ -634,6 +639,15 @@ def _no_peak_chunk(soundfile_obj):
         sf._snd.sf_command(soundfile_obj._file, _SFC_SET_ADD_PEAK_CHUNK, sf._ffi.NULL, 0)
     except (AttributeError, TypeError):  # another soundfile build: keep its default
         pass
+
+
+def read_tags(path):
+    """The text tags libsndfile exposes (title, artist, comment, date, ...), as a dict; {} on failure."""
+    try:
+        with sf.SoundFile(os.fspath(path)) as f:
+            return dict(f.copy_metadata())
+    except _SOUNDFILE_ERRORS:
+        return {}
 
 
 def sha256_file(path, *, chunk_bytes=1 << 20):

@@ -358,9 +358,11 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
         stream = _convolved(task, kernel_for(task), check)
     for _, rel in task.outputs:
         (Path(output_dir) / rel).parent.mkdir(parents=True, exist_ok=True)
+    tags = audio_io.read_tags(task.source)
     writers = {
         stem: audio_io.BlockWriter(
-            Path(output_dir) / rel, rate_hz=info.rate_hz, channels=out_ch, format=task.format, subtype=task.subtype
+            Path(output_dir) / rel, rate_hz=info.rate_hz, channels=out_ch, format=task.format, subtype=task.subtype,
+            tags=tags,
         )
         for stem, rel in task.outputs
     }

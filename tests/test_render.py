@@ -244,3 +244,17 @@ def test_ctrl_c_leaves_no_partial_output(tmp_path):
     for entry in manifest["sources"]:  # what the manifest calls rendered is complete
         for stem in entry["stems"].values():
             assert sf.info(str(out / stem["path"])).frames == stem["frames"]
+
+
+@pytest.mark.parametrize("ext, fmt", [("wav", "WAV"), ("flac", "FLAC")])
+def test_text_tags_are_carried_over(tmp_path, make_job, rng, ext, fmt):
+    (tmp_path / "in").mkdir()
+    with sf.SoundFile(str(tmp_path / "in" / f"t.{ext}"), "w", 48000, 1, "PCM_24", format=fmt) as f:
+        f.title, f.artist, f.comment = "Scene 12, line 3", "Mara", "ADR pass 2"
+        f.write(speechlike(rng, 4000, 1))
+    job = make_job(job_text([f"in/*.{ext}"], extra=f'format = "{ext}"'))
+    assert render(job) == EXIT_OK
+    for stem in ("mix", "wet", "dry"):
+        with sf.SoundFile(str(tmp_path / "out" / f"t.{stem}.{ext}")) as f:
+            tags = f.copy_metadata()
+        assert (tags.get("title"), tags.get("artist"), tags.get("comment")) == ("Scene 12, line 3", "Mara", "ADR pass 2")
