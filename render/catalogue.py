@@ -91,13 +91,13 @@ def _build() -> Dict[str, Room]:
             "S12.60: <= 0.6 s for V <= 283 m³ (1 kHz). Band tilt common practice.",
         ),
         Room(
-            name="lecture-theatre",
+            name="raked-auditorium",
             decay_s=round(din18041_target_s("A2", 18.0 * 14.0 * 5.0), 3),
             decay_lf_s=1.2,
             decay_hf_s=0.9,
             size_m=(18.0, 14.0, 5.0),
             distance_m=5.0,
-            description="Raked lecture room of 1260 m³ built to speech targets.",
+            description="Raked auditorium of 1260 m³ built to speech targets.",
             reference="DIN 18041:2016 group A2 (0.37 lg V - 0.14 = 1.006 s at 1260 m³, derived). Band tilt "
             "common practice.",
         ),

@@ -118,7 +118,7 @@ def random_room(seed, low_s, high_s):
 
 SPEECH_ROOMS = {
     "living-room": lambda: get_room("living-room"),
-    "lecture-theatre": lambda: get_room("lecture-theatre"),
+    "raked-auditorium": lambda: get_room("raked-auditorium"),
     "parish-hall": lambda: get_room("parish-hall"),
     "random-short": lambda: random_room(1, 0.3, 0.6),
     "random-middle": lambda: random_room(2, 0.6, 1.3),
@@ -154,7 +154,7 @@ def make_result(decays, *, verdicts=None, kind="speech", drr_db=None, predelay_m
 # ------------------------------------------------------------------ impulse responses
 
 
-@pytest.mark.parametrize("name", ["living-room", "school-classroom", "lecture-theatre", "parish-hall"])
+@pytest.mark.parametrize("name", ["living-room", "school-classroom", "raked-auditorium", "parish-hall"])
 def test_synthesised_response_reproduces_the_room(name):
     room = get_room(name)
     result = fit.fit_recording(synthesize(room, rate_hz=RATE, channels=1).ir, rate_hz=RATE)
@@ -180,7 +180,7 @@ def first_order_gap_ms(room):
     return 1e3 * (min(images) - direct) / room.speed_of_sound
 
 
-@pytest.mark.parametrize("name", ["living-room", "lecture-theatre", "parish-hall"])
+@pytest.mark.parametrize("name", ["living-room", "raked-auditorium", "parish-hall"])
 @pytest.mark.parametrize("wet_db", [6.0, 12.0])
 def test_measured_like_response_gives_decay_balance_and_gap(name, wet_db, rng):
     # What a measurement looks like: silence, the direct sound, the room, a noise floor 100 dB down;
@@ -248,7 +248,7 @@ def tone_mix(seconds):
     [
         (lambda rng, dry: synthesize(get_room("parish-hall"), rate_hz=RATE, channels=2).ir, True),
         (lambda rng, dry: clap(rng), True),
-        (lambda rng, dry: recording(dry[: 10 * RATE], synthesize(get_room("lecture-theatre"), rate_hz=RATE,
+        (lambda rng, dry: recording(dry[: 10 * RATE], synthesize(get_room("raked-auditorium"), rate_hz=RATE,
                                                                   channels=1).ir, wet_db=0.0, snr_db=60.0, rng=rng),
          False),
         (lambda rng, dry: 0.1 * rng.standard_normal((5 * RATE, 1)), False),
@@ -277,7 +277,7 @@ def test_speech_closed_loop_within_ten_percent(room_id, wet_db, snr_db, dry):
         assert abs(err) <= 10.0, f"{band:g} Hz: {err:+.1f} %"
 
 
-@pytest.mark.parametrize("room_id", ["living-room", "lecture-theatre", "random-long"])
+@pytest.mark.parametrize("room_id", ["living-room", "raked-auditorium", "random-long"])
 def test_low_snr_is_flagged_not_confidently_wrong(room_id, dry):
     room = SPEECH_ROOMS[room_id]()
     ir = synthesize(room, rate_hz=RATE, channels=1).ir
@@ -293,7 +293,7 @@ def test_low_snr_is_flagged_not_confidently_wrong(room_id, dry):
 
 
 def test_stereo_recording_and_channels_in_antiphase(dry):
-    room = get_room("lecture-theatre")
+    room = get_room("raked-auditorium")
     ir = synthesize(room, rate_hz=RATE, channels=2).ir
     stereo = recording(dry[: 30 * RATE], ir, wet_db=0.0, snr_db=60.0, rng=np.random.default_rng(3))
     result = fit.fit_recording(stereo, rate_hz=RATE)
@@ -408,7 +408,7 @@ def parse_room(text, name):
 
 
 def test_room_table_from_speech_parses_and_validates(dry):
-    room = get_room("lecture-theatre")
+    room = get_room("raked-auditorium")
     ir = synthesize(room, rate_hz=RATE, channels=1).ir
     result = fit.fit_recording(recording(dry, ir, wet_db=0.0, snr_db=60.0, rng=np.random.default_rng(1)),
                                rate_hz=RATE)
@@ -424,7 +424,7 @@ def test_room_table_from_speech_parses_and_validates(dry):
 
 
 def test_room_table_from_impulse_sets_distance_and_predelay(rng):
-    room = get_room("lecture-theatre")
+    room = get_room("raked-auditorium")
     wet = synthesize(room, rate_hz=RATE, channels=1).ir
     x = np.zeros((480 + wet.shape[0], 1))
     x[480, 0] = 1.0
