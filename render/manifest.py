@@ -12,7 +12,7 @@ from pathlib import Path
 from . import __version__
 from .errors import OutputError
 
-__all__ = ["SCHEMA_VERSION", "library_versions", "write_json_atomic", "read_manifest", "new_manifest"]
+__all__ = ["SCHEMA_VERSION", "library_versions", "write_bytes_atomic", "write_json_atomic", "read_manifest", "new_manifest"]
 
 SCHEMA_VERSION = 1
 
@@ -46,18 +46,23 @@ def new_manifest(job, *, engine_version):
     }
 
 
-def write_json_atomic(path, data):
-    """Write JSON to a temporary file beside ``path``, fsync it, then rename it into place."""
+def write_bytes_atomic(path, data):
+    """Write bytes to a temporary file beside ``path``, fsync it, then rename it into place.
+
+    Returns the path.  Permissions follow the umask (as an ordinary file would).
+    """
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=str(path.parent))
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=str(path.parent))
+    except OSError as e:
+        raise OutputError(f"{path}: cannot write ({e.strerror or e})") from None
     umask = os.umask(0)
     os.umask(umask)
     try:
         os.chmod(tmp, 0o666 & ~umask)
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            json.dump(data, f, indent=2, sort_keys=False)
-            f.write("\n")
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
             f.flush()
             os.fsync(f.fileno())
         os.replace(tmp, path)
@@ -67,6 +72,12 @@ def write_json_atomic(path, data):
         except OSError:
             pass
         raise OutputError(f"{path}: cannot write ({e.strerror or e})") from None
+    return path
+
+
+def write_json_atomic(path, data):
+    """Write JSON atomically (see :func:`write_bytes_atomic`)."""
+    return write_bytes_atomic(path, (json.dumps(data, indent=2) + "\n").encode("utf-8"))
 
 
 def read_manifest(path):

@@ -20,11 +20,10 @@ import base64
 import html
 import os
 import re
-import tempfile
 from pathlib import Path, PurePosixPath
 
 from .errors import OutputError, RenderError
-from .manifest import SCHEMA_VERSION, read_manifest
+from .manifest import SCHEMA_VERSION, read_manifest, write_bytes_atomic
 
 __all__ = ["write_report", "analyze_plot", "REPORT_NAME", "FIGURES_DIR"]
 
@@ -41,29 +40,8 @@ _OFF = ' class="off"'
 
 
 def _write_atomic(path, data):
-    """Write bytes to a temporary file beside ``path``, fsync, rename into place."""
-    path = Path(path)
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=str(path.parent))
-    except OSError as e:
-        raise OutputError(f"{path}: cannot write ({e.strerror or e})") from None
-    umask = os.umask(0)
-    os.umask(umask)
-    try:
-        os.chmod(tmp, 0o666 & ~umask)
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except OSError as e:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise OutputError(f"{path}: cannot write ({e.strerror or e})") from None
-    return path
+    """Write bytes atomically (temporary file, fsync, rename): :func:`render.manifest.write_bytes_atomic`."""
+    return write_bytes_atomic(path, data)
 
 
 def _load_manifest(out_dir):
