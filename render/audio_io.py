@@ -585,17 +585,7 @@ class BlockWriter:
                 pass
 
     def _sync_folder(self):
-        """Make the rename durable (POSIX); best effort where folders cannot be opened."""
-        try:
-            fd = os.open(os.path.dirname(os.path.abspath(self.path)), os.O_RDONLY)
-        except OSError:
-            return
-        try:
-            os.fsync(fd)
-        except OSError:
-            pass
-        finally:
-            os.close(fd)
+        sync_folder(os.path.dirname(os.path.abspath(self.path)))
 
 
 def write_response(path, ir, *, rate_hz):
@@ -625,6 +615,20 @@ def write_response(path, ir, *, rate_hz):
     with BlockWriter(path, rate_hz=rate_hz, channels=ir.shape[1], format=format, subtype="FLOAT") as w:
         w.write(ir)
     return w.path
+
+
+def sync_folder(folder):
+    """fsync a folder so that a rename into it is durable (POSIX); best effort elsewhere."""
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
 
 
 #: libsndfile's command that turns off the PEAK chunk of float files (sndfile.h: SFC_SET_ADD_PEAK_CHUNK).

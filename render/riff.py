@@ -50,6 +50,7 @@ import struct
 from dataclasses import dataclass
 from typing import Optional, Tuple
 
+from .audio_io import sync_folder
 from .errors import AudioInputError, OutputError, ParameterError
 
 __all__ = [
@@ -591,19 +592,6 @@ def _copy_range(src, dst, offset, size):
         left -= len(piece)
 
 
-def _sync_folder(folder):
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
 def insert_chunks(path, chunks):
     """Put metadata chunks before ``data`` in a WAV/RF64 file, atomically.
 
@@ -731,7 +719,7 @@ def insert_chunks(path, chunks):
                     os.unlink(temp)
                 except OSError:
                     pass
-    _sync_folder(folder)
+    sync_folder(folder)
 
 
 # --------------------------------------------------------------------------- coding history
