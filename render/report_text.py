@@ -29,7 +29,8 @@ def rooms_table(rooms):
     >>> print(rooms_table({"box": Room(name="box", decay_s=0.5, size_m=(4.0, 3.0, 2.5))}).splitlines()[3][:22])
     box   0.50  0.50  0.50
     """
-    header = ["room"] + [_band_label(f) for f in OCTAVE_BANDS_HZ] + ["size m", "V m³", "r_c m", "f_S Hz", "dist m"]
+    header = ["room"] + [_band_label(f) for f in OCTAVE_BANDS_HZ] + [
+        "size m", "V m³", "S m²", "mfp m", "A m²", "r_c m", "f_S Hz", "dist m"]
     rows = []
     for name in sorted(rooms):
         r = rooms[name]
@@ -39,12 +40,16 @@ def rooms_table(rooms):
             + [
                 "×".join(f"{v:g}" for v in r.size_m),
                 f"{r.volume_m3:.0f}",
+                f"{r.surface_m2:.0f}",
+                f"{r.mean_free_path_m:.2f}",
+                f"{r.sabine_absorption_m2:.1f}",
                 f"{r.critical_distance_m:.2f}",
                 f"{r.schroeder_frequency_hz:.0f}",
                 f"{r.distance_m:.1f}",
             ]
         )
-    title = "Reverberation time T60 per octave band (s), 125 Hz - 8 kHz"
+    title = ("Reverberation time T60 per octave band (s), 125 Hz - 8 kHz; V volume, S surface, mfp mean free "
+             "path 4V/S, A Sabine absorption 0.161 V/T, r_c critical distance, f_S Schroeder frequency")
     return title + "\n" + format_table(header, rows)
 
 
