@@ -11,6 +11,7 @@
 from __future__ import annotations
 
 import concurrent.futures as cf
+import io
 import tempfile
 import multiprocessing
 import os
@@ -19,14 +20,16 @@ import time
 import traceback
 from pathlib import Path
 
+import numpy as np
+
 from . import audio_io
 from .errors import RenderError
-from .manifest import new_manifest, read_manifest, write_json_atomic
+from .manifest import new_manifest, read_manifest, write_bytes_atomic, write_json_atomic
 from .errors import OutputError, ParameterError
 from .plan import MANIFEST_NAME, response_files
 from .delivery import decide_gain
 from .loudness import integrated_over
-from .renderer import measure_task, render_task, temp_path_for
+from .renderer import RESPONSES_DIR, measure_task, render_task, response_store_path, temp_path_for
 from .shards import assign_shards, shard_manifest_name, task_weight
 from .synthesis import ENGINE_VERSION, synthesize
 
@@ -330,6 +333,12 @@ def _write_rooms(plan, manifest, tasks):
         response = synthesize(room, rate_hz=rate, channels=channels, tail_floor_db=plan.job.tail_floor_db)
         path.parent.mkdir(parents=True, exist_ok=True)
         audio_io.write_response(path, response.ir, rate_hz=rate)
+        store = response_store_path(plan.job.output_dir, room=room, rate_hz=rate, channels=channels,
+                                    tail_floor_db=plan.job.tail_floor_db)
+        if not store.is_file():
+            buf = io.BytesIO()
+            np.save(buf, np.ascontiguousarray(response.ir), allow_pickle=False)
+            write_bytes_atomic(store, buf.getvalue())
         manifest["rooms"].append(
             {
                 "name": name,
@@ -569,6 +578,7 @@ def _run_locked(plan, out_dir, manifest_path, selected, *, jobs, quiet, resume, 
         progress.close()
         if shard is None:
             _remove_tree(out_dir / ".render-tmp")
+            _remove_tree(out_dir / RESPONSES_DIR)
         else:
             for i in todo:
                 _remove(temp_path_for(plan.tasks[i], out_dir))

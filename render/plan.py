@@ -143,7 +143,7 @@ def _output_name(job: Job, *, dir_value, name, stem, room, group, ext):
             f"{job.path}: job.name_pattern = \"{job.name_pattern}\": gives \"{text}\", which leaves the output folder"
         )
     rel = PurePosixPath(*parts)
-    if rel.parts[0] in (ROOMS_DIR, "report", ".render-tmp") or str(rel) in (MANIFEST_NAME, "report.html"):
+    if rel.parts[0] in (ROOMS_DIR, "report", ".render-tmp", ".render-responses") or str(rel) in (MANIFEST_NAME, "report.html"):
         raise JobError(f"{job.path}: job.name_pattern = \"{job.name_pattern}\": \"{rel}\" is reserved for the renderer")
     return rel.as_posix() + ext
 

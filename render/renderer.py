@@ -28,6 +28,7 @@ the last bit (unless the mix clips, which is counted).
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 import os
 import time
 from collections import OrderedDict
@@ -52,20 +53,47 @@ _KERNELS: "OrderedDict[tuple, convolve.Kernel]" = OrderedDict()
 _KERNEL_CACHE_SIZE = 8
 
 
-def kernel_for(task):
-    """The prepared (wet-gain-scaled) response of a task, cached per process."""
+#: Folder (inside the output folder) where the batch leaves each response as float64 ``.npy``,
+#: so that workers that did not plan (a Dask cluster) map it instead of synthesising it again.
+RESPONSES_DIR = ".render-responses"
+
+
+def response_store_path(output_dir, *, room, rate_hz, channels, tail_floor_db):
+    """Where the batch stores a response for its workers (named by everything that shapes it)."""
+    from .synthesis import ENGINE_VERSION
+
+    ident = f"{ENGINE_VERSION}|{room.fingerprint()}|{float(rate_hz)!r}|{channels}|{float(tail_floor_db)!r}"
+    name = hashlib.sha256(ident.encode("utf-8")).hexdigest()[:32]
+    return Path(output_dir) / RESPONSES_DIR / f"{name}.npy"
+
+
+def kernel_for(task, output_dir=None):
+    """The prepared (wet-gain-scaled) response of a task, cached per process.
+
+    The response comes from the batch's float64 store in ``output_dir`` when
+    it is there (memory-mapped: the same bits as a synthesis), else from
+    :func:`render.synthesis.synthesize`.
+    """
     key = (task.room.fingerprint(), float(task.info.rate_hz), task.channels_out, task.tail_floor_db, task.wet_db)
     kernel = _KERNELS.get(key)
     if kernel is None:
-        response = synthesize(
-            task.room, rate_hz=float(task.info.rate_hz), channels=task.channels_out, tail_floor_db=task.tail_floor_db
-        )
-        if response.tail_frames != task.tail_frames:
+        ir = None
+        if output_dir is not None:
+            stored = response_store_path(output_dir, room=task.room, rate_hz=task.info.rate_hz,
+                                         channels=task.channels_out, tail_floor_db=task.tail_floor_db)
+            try:
+                ir = np.load(stored, mmap_mode="r", allow_pickle=False)
+            except (OSError, ValueError):
+                ir = None
+        if ir is None or ir.ndim != 2 or ir.shape[1] != task.channels_out:
+            ir = synthesize(task.room, rate_hz=float(task.info.rate_hz), channels=task.channels_out,
+                            tail_floor_db=task.tail_floor_db).ir
+        if ir.shape[0] - 1 != task.tail_frames:
             raise RenderError(
-                f"{task.key}: the room's response has {response.tail_frames} tail frames, the plan expected "
+                f"{task.key}: the room's response has {ir.shape[0] - 1} tail frames, the plan expected "
                 f"{task.tail_frames} (planned with another version of the engine?)"
             )
-        kernel = convolve.prepare_kernel(response.ir * db_to_gain(task.wet_db))
+        kernel = convolve.prepare_kernel(np.asarray(ir) * db_to_gain(task.wet_db))
         _KERNELS[key] = kernel
         while len(_KERNELS) > _KERNEL_CACHE_SIZE:
             _KERNELS.popitem(last=False)
@@ -250,7 +278,7 @@ def measure_task(task, *, output_dir):
         ``before`` (the mix's loudness and true peak at unit gain), ``hops``
         (per-100 ms weighted energies, for group loudness) and ``hop_frames``.
     """
-    kernel = kernel_for(task)
+    kernel = kernel_for(task, output_dir)
     temp = temp_path_for(task, output_dir)
     temp.parent.mkdir(parents=True, exist_ok=True)
     meter = _Meter(task.info.rate_hz, task.channels_out)
@@ -353,9 +381,9 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
     temp = temp_path_for(task, output_dir)
     check = _SourceCheck(task)
     if two_pass:
-        stream = _from_temporary(task, temp, block_frames=max(4096, kernel_for(task).block_frames), check=check)
+        stream = _from_temporary(task, temp, block_frames=max(4096, kernel_for(task, output_dir).block_frames), check=check)
     else:
-        stream = _convolved(task, kernel_for(task), check)
+        stream = _convolved(task, kernel_for(task, output_dir), check)
     for _, rel in task.outputs:
         (Path(output_dir) / rel).parent.mkdir(parents=True, exist_ok=True)
     tags = audio_io.read_tags(task.source)
