@@ -14,3 +14,15 @@ from .errors import (  # noqa: F401
     RoomError,
 )
 from .room import Room  # noqa: F401
+
+__all__ = [
+    "__version__",
+    "AnalysisError",
+    "AudioInputError",
+    "JobError",
+    "OutputError",
+    "ParameterError",
+    "RenderError",
+    "RoomError",
+    "Room",
+]

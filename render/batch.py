@@ -12,10 +12,10 @@ from __future__ import annotations
 
 import concurrent.futures as cf
 import io
-import tempfile
 import multiprocessing
 import os
 import sys
+import tempfile
 import time
 import traceback
 from pathlib import Path
@@ -23,12 +23,11 @@ from pathlib import Path
 import numpy as np
 
 from . import audio_io
-from .errors import RenderError
-from .manifest import new_manifest, read_manifest, write_bytes_atomic, write_json_atomic
-from .errors import OutputError, ParameterError
-from .plan import MANIFEST_NAME, response_files
 from .delivery import decide_gain
+from .errors import OutputError, ParameterError, RenderError
 from .loudness import integrated_over
+from .manifest import new_manifest, read_manifest, write_bytes_atomic, write_json_atomic
+from .plan import MANIFEST_NAME, response_files
 from .renderer import RESPONSES_DIR, measure_task, render_task, response_store_path, temp_path_for
 from .shards import assign_shards, shard_manifest_name, task_weight
 from .synthesis import ENGINE_VERSION, synthesize

@@ -1,5 +1,6 @@
 """The command line: rooms, ir, analyze, and one-line errors with documented exit codes."""
 
+import contextlib
 import json
 
 import numpy as np
@@ -52,21 +53,13 @@ def test_ir_then_analyze_reads_the_targets(tmp_path, capsys):
 )
 def test_errors_are_one_line_with_an_exit_code(tmp_path, monkeypatch, capsys, argv, code, text):
     monkeypatch.chdir(tmp_path)
-    with pytest.raises(SystemExit) if code == EXIT_USAGE else _nothing() as exc:
+    with pytest.raises(SystemExit) if code == EXIT_USAGE else contextlib.nullcontext() as exc:
         rc = main(argv)
     if code == EXIT_USAGE:
         rc = exc.value.code
     assert rc == code
     err = capsys.readouterr().err
     assert text in err and "Traceback" not in err and len(err.strip().splitlines()) == 1
-
-
-class _nothing:
-    def __enter__(self):
-        return None
-
-    def __exit__(self, *exc):
-        return False
 
 
 def test_analyze_refuses_silence(tmp_path, capsys):
