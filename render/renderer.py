@@ -108,7 +108,11 @@ def temp_path_for(task, output_dir):
 
 
 class _Queue:
-    """Frames waiting to be paired with frames that arrive later (no copies beyond one block)."""
+    """Frames waiting to be paired with frames that arrive later (no copies beyond one block).
+
+    ``pop`` returns a view into a pushed block when one block holds all the
+    frames asked for, so callers must not write into what they pushed or popped.
+    """
 
     def __init__(self, channels):
         self.blocks = []
@@ -120,6 +124,14 @@ class _Queue:
             self.blocks.append(block)
 
     def pop(self, frames):
+        if self.blocks and self.blocks[0].shape[0] - self.offset >= frames:
+            # Served by the head block alone: a view, no copy.
+            head, start = self.blocks[0], self.offset
+            self.offset += frames
+            if self.offset == head.shape[0]:
+                self.blocks.pop(0)
+                self.offset = 0
+            return head[start : start + frames]
         out = np.zeros((frames, self.channels))
         filled = 0
         while filled < frames and self.blocks:
@@ -335,10 +347,74 @@ def _carry_metadata(task, path, meta, *, stem, after):
         riff.insert_chunks(path, chunks)
 
 
-#: With a target and the limiter, the written mix may read low by what limiting took; passes are
-#: repeated with the difference added until it reads within this many LU (at most MAKEUP_PASSES).
+#: With a target and the limiter, limiting takes loudness off the mix.  Before anything is
+#: written, probes (limiter and loudness meter only, nothing written) find the gain at which the
+#: limited mix reads within MAKEUP_PROBE_LU of the target (at most MAKEUP_PROBES probes, secant
+#: steps); the written mix is checked again and, should it still miss by more than
+#: MAKEUP_TOLERANCE_LU, written again with the difference added (at most MAKEUP_PASSES writes).
 MAKEUP_TOLERANCE_LU = 0.05
+MAKEUP_PROBE_LU = 0.02
+MAKEUP_PROBES = 4
 MAKEUP_PASSES = 3
+
+
+def _probe_lufs(task, temp, *, gain, limit, block_frames):
+    """Integrated loudness of the limited mix at linear ``gain`` (no dither, nothing written).
+
+    The limiter sees exactly what the writing pass gives it (``dry * gain + wet * gain``), so
+    its gain curve is the same; the meter reads the mix before dither.
+    """
+    lim = limiter.limiter_init(rate_hz=task.info.rate_hz, channels=task.channels_out, ceiling_dbtp=limit)
+    loud = loudness.meter_init(rate_hz=task.info.rate_hz, channels=task.channels_out)
+    pending = _Queue(task.channels_out)
+    for dry, wet in _from_temporary(task, temp, block_frames=block_frames):
+        if gain != 1.0:
+            dry, wet = dry * gain, wet * gain
+        mix = dry + wet
+        pending.push(mix)
+        g, lim = limiter.limiter_update(mix, lim)
+        if g.shape[0]:
+            loud = loudness.meter_update(pending.pop(g.shape[0]) * g[:, None], loud)
+    g, lim = limiter.limiter_flush(lim)
+    if g.shape[0]:
+        loud = loudness.meter_update(pending.pop(g.shape[0]) * g[:, None], loud)
+    return loudness.meter_result(loud).integrated_lufs
+
+
+def makeup_gain_db(task, temp, *, gain_db, limit, target_lufs, block_frames):
+    """The gain, dB, at which the limited mix reads ``target_lufs`` (within :data:`MAKEUP_PROBE_LU`).
+
+    Starts from ``gain_db`` (target minus the unlimited mix's loudness) and
+    probes: each probe runs the limiter and the loudness meter over the whole
+    mix at one gain.  The first step adds the shortfall; later steps are
+    secant steps through the last two probes (limiting takes more loudness
+    off as the gain rises, so the slope is at most 1).
+
+    Returns
+    -------
+    gain_db : float
+        The probed gain whose reading is closest to the target.
+    probes : int
+        Probes run, 1 .. :data:`MAKEUP_PROBES`.
+    """
+    tried = []
+    trial = float(gain_db)
+    for probe in range(1, MAKEUP_PROBES + 1):
+        lufs = _probe_lufs(task, temp, gain=db_to_gain(trial), limit=limit, block_frames=block_frames)
+        if lufs is None:  # nothing above the gates: no reading to aim with
+            return trial, probe
+        tried.append((trial, lufs))
+        miss = target_lufs - lufs
+        if abs(miss) <= MAKEUP_PROBE_LU:
+            return trial, probe
+        step = miss
+        if len(tried) >= 2:
+            (g0, l0), (g1, l1) = tried[-2], tried[-1]
+            slope = (l1 - l0) / (g1 - g0) if g1 != g0 else 1.0
+            step = miss / min(1.0, max(slope, 0.25))
+        trial = trial + step
+    best = min(tried, key=lambda t: abs(target_lufs - t[1]))
+    return best[0], MAKEUP_PROBES
 
 
 def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, target_lufs=None, _attempt=1):
@@ -358,9 +434,11 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
         Read the wet signal from :func:`measure_task`'s temporary instead of
         convolving again (the temporary is removed afterwards).
     target_lufs : float, optional
-        With ``two_pass`` and ``limit``: when the written mix reads more than
-        :data:`MAKEUP_TOLERANCE_LU` off the target (limiting lowers loudness),
-        render again with the difference added (at most :data:`MAKEUP_PASSES`).
+        With ``two_pass`` and ``limit``: limiting lowers loudness, so the gain
+        is first raised by :func:`makeup_gain_db` (probes that write
+        nothing); should the written mix still read more than
+        :data:`MAKEUP_TOLERANCE_LU` off the target, it is rendered again with
+        the difference added (at most :data:`MAKEUP_PASSES` writes).
 
     Returns
     -------
@@ -368,7 +446,8 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
         Per stem ``path``, ``sha256``, ``frames``, ``peak_dbfs``,
         ``clipped_samples``; ``input_sha256``; ``after`` (loudness and true
         peak of the written mix); ``limiter_reduction_db``; ``gain_db``;
-        ``notes``; ``render_s``.
+        ``notes``; ``passes`` (writes, 1 unless the make-up had to write
+        again); ``probes`` (make-up probes); ``render_s``.
     """
     started = time.perf_counter()
     info = task.info
@@ -380,8 +459,18 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
     notes = list(notes)
     temp = temp_path_for(task, output_dir)
     check = _SourceCheck(task)
+    probes = 0
     if two_pass:
-        stream = _from_temporary(task, temp, block_frames=max(4096, kernel_for(task, output_dir).block_frames), check=check)
+        block_frames = max(4096, kernel_for(task, output_dir).block_frames)
+        if limit is not None and target_lufs is not None and _attempt == 1:
+            try:
+                gain_db, probes = makeup_gain_db(task, temp, gain_db=gain_db, limit=limit, target_lufs=target_lufs,
+                                                 block_frames=block_frames)
+            except BaseException:
+                _unlink(temp)
+                raise
+            gain = db_to_gain(gain_db)
+        stream = _from_temporary(task, temp, block_frames=block_frames, check=check)
     else:
         stream = _convolved(task, kernel_for(task, output_dir), check)
     for _, rel in task.outputs:
@@ -403,7 +492,7 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
             seed = dither.dither_seed(job_sha256=task.settings_sha256, source_key=task.key, stem=stem)
             dithers[stem] = dither.dither_init(seed, channels=out_ch)
     lim = limiter.limiter_init(rate_hz=info.rate_hz, channels=out_ch, ceiling_dbtp=limit) if limit is not None else None
-    pending = _Queue(2 * out_ch)
+    pending_dry, pending_wet = _Queue(out_ch), _Queue(out_ch)
     written = 0
 
     def quantise(stem, block):
@@ -439,8 +528,8 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
         written += n
 
     def gained(g):
-        both = pending.pop(g.shape[0]) * g[:, None]
-        return both[:, :out_ch], both[:, out_ch:]
+        curve = g[:, None]
+        return pending_dry.pop(g.shape[0]) * curve, pending_wet.pop(g.shape[0]) * curve
 
     try:
         for dry, wet in stream:
@@ -449,7 +538,8 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
             if lim is None:
                 write(dry, wet)
                 continue
-            pending.push(np.concatenate([dry, wet], axis=1))
+            pending_dry.push(dry)
+            pending_wet.push(wet)
             g, lim = limiter.limiter_update(dry + wet, lim)
             if g.shape[0]:
                 write(*gained(g))
@@ -465,8 +555,6 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
     except BaseException:
         for w in writers.values():
             w.abort()
-        raise
-    except BaseException:
         if two_pass:
             _unlink(temp)
         raise
@@ -478,8 +566,10 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
         and abs(after["integrated_lufs"] - target_lufs) > MAKEUP_TOLERANCE_LU
         and _attempt < MAKEUP_PASSES
     ):
-        return render_task(task, output_dir=output_dir, gain_db=gain_db + (target_lufs - after["integrated_lufs"]),
-                           limit=limit, two_pass=True, target_lufs=target_lufs, _attempt=_attempt + 1)
+        again = render_task(task, output_dir=output_dir, gain_db=gain_db + (target_lufs - after["integrated_lufs"]),
+                            limit=limit, two_pass=True, target_lufs=target_lufs, _attempt=_attempt + 1)
+        again["probes"] += probes
+        return again
     if two_pass:
         _unlink(temp)
     if meta is not None:
@@ -510,5 +600,6 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
     }
     result["notes"] = notes
     result["passes"] = _attempt
+    result["probes"] = probes
     result["render_s"] = round(time.perf_counter() - started, 4)
     return result

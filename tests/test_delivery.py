@@ -289,6 +289,35 @@ def test_heavily_limited_mix_still_reads_the_target(tmp_path):
     assert abs(lufs_of(read_stem(job, e, "mix")) + 23.0) < 0.1  # pyloudnorm (BS.1770-4), EBU R128 target
 
 
+@pytest.mark.parametrize("crest_db", [25.0, 28.0])
+def test_makeup_probes_find_the_gain_before_anything_is_written(tmp_path, crest_db):
+    # The make-up gain is found by probes that write nothing, so the stems are written once; the
+    # written mix then reads the target (EBU R128, -23 LUFS) by pyloudnorm (ITU-R BS.1770-4) within
+    # the renderer's own tolerance, 0.05 LU (our choice).
+    from render.delivery import decide_gain
+    from render.plan import plan_job
+    from render.renderer import MAKEUP_PROBES, measure_task, render_task
+
+    write_source(tmp_path / "in" / "take.wav", speech_with_clicks(np.random.default_rng(103), 6.0, 2,
+                                                                  crest_db=crest_db))
+    job = write_job(tmp_path, loudness='preset = "ebu-r128"')
+    plan = plan_job(load_job(job))
+    (task,) = plan.tasks
+    out = plan.job.output_dir
+    before = measure_task(task, output_dir=out)["before"]
+    d = decide_gain(before["integrated_lufs"], target_lufs=-23.0, true_peak_dbtp=before["true_peak_dbtp"],
+                    ceiling_dbtp=-1.0, over_ceiling="limit")
+    assert d.limit  # the material is made to need the limiter
+    facts = render_task(task, output_dir=out, gain_db=d.gain_db, limit=-1.0, two_pass=True, target_lufs=-23.0)
+    assert facts["passes"] == 1
+    assert 1 <= facts["probes"] <= MAKEUP_PROBES
+    assert facts["gain_db"] > d.gain_db  # limiting took loudness off, the gain made it up
+    mix = sf.read(str(out / facts["stems"]["mix"]["path"]), always_2d=True)[0]
+    assert abs(lufs_of(mix) + 23.0) < 0.05
+    assert abs(facts["after"]["integrated_lufs"] + 23.0) < 0.05
+    assert not (out / ".render-tmp").exists() or not any((out / ".render-tmp").iterdir())
+
+
 # --------------------------------------------------------------------------- 2. null test
 
 
