@@ -403,6 +403,13 @@ class BlockWriter:
     subtype : str
         As returned by :func:`output_format`; always passed to soundfile
         explicitly.
+    tags : dict, optional
+        libsndfile text tags (``title``, ``artist``, ...) to write; a tag the
+        container cannot hold is left out.
+    durable : bool
+        Flush the file to disk before the rename (default).  False for
+        scratch files that are made again when lost (the two-pass
+        temporaries): the rename is still atomic, only the fsync is skipped.
 
     Attributes
     ----------
@@ -421,8 +428,9 @@ class BlockWriter:
     >>> import shutil; shutil.rmtree(folder)
     """
 
-    def __init__(self, path, *, rate_hz, channels, format, subtype, tags=None):
+    def __init__(self, path, *, rate_hz, channels, format, subtype, tags=None, durable=True):
         self.path = os.fspath(path)
+        self.durable = bool(durable)
         self.frames_written = 0
         self.peak = 0.0
         self._state = "closed"  # until opened: 'open', then 'committed' or 'aborted'
@@ -514,7 +522,7 @@ class BlockWriter:
         if block.shape[0] == 0:
             return
         block = np.ascontiguousarray(block, dtype=np.float64)
-        peak = float(np.max(np.abs(block)))
+        peak = max(float(block.max()), -float(block.min()))  # NaN propagates; no |x| temporary
         if not np.isfinite(peak):
             raise OutputError(
                 f"{self.path}: block at frame {self.frames_written} contains NaN or infinite samples: "
@@ -544,7 +552,8 @@ class BlockWriter:
         try:
             self._sf.close()
             self._sf = None
-            os.fsync(self._fd)
+            if self.durable:
+                os.fsync(self._fd)
             os.close(self._fd)
             self._fd = None
             os.replace(self.temp_path, self.path)
@@ -555,7 +564,8 @@ class BlockWriter:
                 raise OutputError(f"{self.path}: cannot finish the file: {_reason(exc)}") from exc
             raise
         self._state = "committed"
-        self._sync_folder()
+        if self.durable:
+            self._sync_folder()
         return self.path
 
     def abort(self):

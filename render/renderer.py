@@ -294,8 +294,10 @@ def measure_task(task, *, output_dir):
     temp = temp_path_for(task, output_dir)
     temp.parent.mkdir(parents=True, exist_ok=True)
     meter = _Meter(task.info.rate_hz, task.channels_out)
-    with audio_io.BlockWriter(temp, rate_hz=task.info.rate_hz, channels=task.channels_out, format="WAV",
-                              subtype="DOUBLE") as w:
+    container = "WAV" if audio_io.predicted_bytes(frames=task.frames_out, channels=task.channels_out, subtype="DOUBLE",
+                                                  format="wav") <= audio_io.RIFF_LIMIT_BYTES - audio_io.RF64_MARGIN_BYTES else "RF64"
+    with audio_io.BlockWriter(temp, rate_hz=task.info.rate_hz, channels=task.channels_out, format=container,
+                              subtype="DOUBLE", durable=False) as w:
         for dry, wet in _convolved(task, kernel, _SourceCheck(task)):
             meter.update(dry + wet)
             w.write(wet)

@@ -217,6 +217,21 @@ def test_commit_replaces_an_existing_file(tmp_path):
     assert probe(final).frames == 10 and _listing(tmp_path) == ["out.wav"]
 
 
+@pytest.mark.parametrize("durable, syncs", [(True, 2), (False, 0)])
+def test_durable_writers_flush_file_and_folder_scratch_writers_do_not(tmp_path, monkeypatch, durable, syncs):
+    # A stem is flushed (the file, then its folder) before it counts as written; a scratch file is
+    # not, but it still appears only complete, by rename (our design).
+    calls = []
+    real_fsync = os.fsync
+    monkeypatch.setattr(os, "fsync", lambda fd: (calls.append(fd), real_fsync(fd))[1])
+    final = tmp_path / "out.wav"
+    with BlockWriter(final, rate_hz=RATE_HZ, channels=1, format="WAV", subtype="DOUBLE", durable=durable) as w:
+        w.write(np.full((10, 1), 0.5))
+        assert not final.exists()
+    assert len(calls) == (syncs if os.name == "posix" else min(syncs, 1))
+    assert _listing(tmp_path) == ["out.wav"] and sf.read(str(final))[0].tolist() == [0.5] * 10
+
+
 @pytest.mark.skipif(os.name != "posix", reason="POSIX permission bits")
 def test_final_file_has_ordinary_permissions(tmp_path):
     umask = os.umask(0o022)
