@@ -518,6 +518,7 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
         else:
             mix = dry + wet
         parts = {"dry": dry, "wet": wet, "mix": mix}
+        metered = mix
         for stem, w in writers.items():
             block = parts[stem]
             peak = max(float(block.max()), -float(block.min()))
@@ -525,8 +526,12 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
             if integer_output and peak > 1.0:
                 clipped[stem] += int(np.count_nonzero(np.abs(block) > 1.0))
                 block = np.clip(block, -1.0, 1.0)
+                if stem == "mix":
+                    metered = block
             w.write(block)
-        meter.update(np.clip(mix, -1.0, 1.0) if integer_output else mix)
+        if integer_output and "mix" not in writers and max(float(mix.max()), -float(mix.min())) > 1.0:
+            metered = np.clip(mix, -1.0, 1.0)
+        meter.update(metered)  # what the mix file holds: clipped where an integer format clips
         written += n
 
     def gained(g):
