@@ -360,7 +360,7 @@ def meter_init(*, rate_hz, channels, channel_weights=None):
     )
 
 
-def _check_block(block, channels, name="block"):
+def _check_block(block, channels, name="block", finite=True):
     """Validate a (frames, channels) float block; ``channels=None`` accepts any count."""
     if not isinstance(block, np.ndarray):
         raise ParameterError(f"{name} is a {type(block).__name__}: expected a numpy array of shape (frames, channels)")
@@ -372,9 +372,19 @@ def _check_block(block, channels, name="block"):
         raise ParameterError(f"{name} has {block.shape[1]} channels: expected {channels}")
     if not np.issubdtype(block.dtype, np.floating):
         raise ParameterError(f"{name}.dtype = {block.dtype}: expected floating-point samples (full scale 1.0)")
-    if block.size and not np.isfinite(block).all():
-        raise ParameterError(f"{name} contains NaN or infinite samples: expected finite values")
+    if finite and block.size and not np.isfinite(block).all():
+        raise _non_finite(name)
     return np.asarray(block, dtype=np.float64)
+
+
+def _non_finite(name):
+    return ParameterError(f"{name} contains NaN or infinite samples: expected finite values")
+
+
+#: Frames K-weighted per call of :func:`scipy.signal.sosfilt` (rounded down to
+#: whole hops): its working copy then stays in cache for the sums of squares,
+#: which costs less than the extra calls.
+_CHUNK_FRAMES = 1 << 16
 
 
 def meter_update(block, state):
@@ -392,40 +402,77 @@ def meter_update(block, state):
     MeterState
         Metering block after block gives the same result as metering the
         concatenation at once (to rounding, ~1e-15 LU).
+
+    Notes
+    -----
+    A block is K-weighted in pieces of about 65 536 frames (whole hops, after
+    the rest of a hop left open by the previous block), the filter state
+    carried from piece to piece, so that :func:`scipy.signal.sosfilt`'s
+    working copy and the sums of squares stay in cache.  There is no separate
+    pass for finiteness: a NaN or infinite sample makes its hop's sum of
+    squares non-finite (both stages pass the current sample with a non-zero
+    coefficient), and only then are the samples themselves checked.  Channels
+    weighted 0 are not filtered and are checked directly.
     """
+    return _update(block, state, "block")
+
+
+def _hop_squares(y):
+    """Per-channel sums of squares of a (channels, hops, hop) view: shape (channels, hops)."""
+    return np.einsum("chn,chn->ch", y, y)
+
+
+def _update(block, state, name):
     if not isinstance(state, MeterState):
         raise ParameterError(f"state is a {type(state).__name__}: expected a MeterState from meter_init")
-    x = _check_block(block, state.channels)
+    # Finiteness is checked on the sums of squares (see meter_update's notes).
+    x = _check_block(block, state.channels, name=name, finite=False)
     n = x.shape[0]
     if n == 0:
         return state
-    xa = x[:, state._active] if len(state._active) != state.channels else x
-    y, zf = _signal.sosfilt(state._sos, xa, axis=0, zi=state._zi)
-    squares = np.square(y)  # (n, active channels)
-
+    active = state._active
+    subset = len(active) != state.channels
+    if subset:
+        inactive = [c for c in range(state.channels) if c not in active]
+        if not np.isfinite(x[:, inactive]).all():
+            raise _non_finite(name)
     hop = state.hop_frames
     weights = state._active_weights
+    unit = bool(np.all(weights == 1.0))
+    zi = state._zi
     hops = []
     partial = state._partial_energy  # per active channel, sum over the open hop
     partial_frames = state._partial_frames
-    pos = 0
+    # Pieces: first the rest of the open hop, then whole hops, a partial hop last.
+    step = max(1, _CHUNK_FRAMES // hop) * hop
+    edges = [0]
     if partial_frames:
-        take = min(hop - partial_frames, n)
-        partial = partial + squares[:take].sum(axis=0)
-        partial_frames += take
-        pos = take
-        if partial_frames == hop:
-            hops.append(np.array([np.sum(partial * weights)]))
-            partial, partial_frames = np.zeros_like(partial), 0
-    whole = (n - pos) // hop
-    if whole:
-        sums = squares[pos:pos + whole * hop].reshape(whole, hop, -1).sum(axis=1)
-        hops.append((sums * weights).sum(axis=1))
-        pos += whole * hop
-    if pos < n:
-        partial = partial + squares[pos:].sum(axis=0)
-        partial_frames += n - pos
+        edges.append(min(hop - partial_frames, n))
+    edges.extend(range(edges[-1] + step, n, step))
+    if edges[-1] != n:
+        edges.append(n)
+    for start, stop in zip(edges[:-1], edges[1:]):
+        piece = x[start:stop]
+        if subset:
+            piece = piece[:, active]
+        y, zi = _signal.sosfilt(state._sos, piece, axis=0, zi=zi)
+        y = y.T  # sosfilt's output is (channels, frames) in memory: C-contiguous rows
+        m = stop - start
+        whole = 0 if partial_frames else m // hop
+        if whole:
+            sums = _hop_squares(y[:, :whole * hop].reshape(y.shape[0], whole, hop))
+            hops.append(sums.sum(axis=0) if unit else (weights[:, None] * sums).sum(axis=0))
+        rest = y[:, whole * hop:]
+        if rest.shape[1]:
+            partial = partial + np.einsum("cn,cn->c", rest, rest)
+            partial_frames += rest.shape[1]
+            if partial_frames == hop:
+                hops.append(np.array([np.sum(partial * weights)]))
+                partial, partial_frames = np.zeros_like(partial), 0
     new = np.concatenate(hops) if hops else np.empty(0)
+    if not (np.isfinite(new).all() and np.isfinite(partial).all()) and not np.isfinite(x).all():
+        # (Finite samples so large that their squares overflow pass, as before.)
+        raise _non_finite(name)
     series, count = state._hops.extend(state._hop_count, new)
     return MeterState(
         rate_hz=state.rate_hz,
@@ -436,7 +483,7 @@ def meter_update(block, state):
         _sos=state._sos,
         _active=state._active,
         _active_weights=state._active_weights,
-        _zi=zf,
+        _zi=zi,
         _partial_energy=partial,
         _partial_frames=partial_frames,
         _hops=series,
@@ -553,9 +600,9 @@ def measure(signal, *, rate_hz, channel_weights=None):
     >>> measure(np.zeros((48000, 1)), rate_hz=48000).reason
     'not measurable: silence (no block above -70 LUFS); short-term loudness and loudness range not measurable: shorter than 3 s'
     """
-    _check_block(signal, None, name="signal")
+    _check_block(signal, None, name="signal", finite=False)
     state = meter_init(rate_hz=rate_hz, channels=signal.shape[1], channel_weights=channel_weights)
-    return meter_result(meter_update(signal, state))
+    return meter_result(_update(signal, state, "signal"))
 
 
 def integrated_over(hop_series, *, hop_frames):

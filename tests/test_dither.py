@@ -103,6 +103,38 @@ def test_block_by_block_equals_one_pass_exactly(frames, block, rng):
     assert state.frames == frames and state.clipped_samples == one_state.clipped_samples
 
 
+def _recorded_material():
+    """Two tones with a little offset, some samples beyond full scale; 70 000 frames (several pieces)."""
+    t = np.arange(70_000)[:, None]
+    x = 0.9 * np.sin(2 * np.pi * np.array([997.0, 1999.0]) * t / 48000) + np.array([0.0, 3e-6])
+    x[1000:1010] = [1.2, -1.3]
+    x[50_000:50_005] = [-1.0, 1.0]
+    return x
+
+
+@pytest.mark.parametrize("subtype, sha256, clipped", [
+    ("PCM_16", "4630d919d9bb1ce8803ade3f00e5e3b2b3326c6c5f8cddd7e83752f68df475ad", 24),
+    ("PCM_24", "5d2d854077b279bbb4f1bbbb6248ab1d2e06a64fd17310cabb9fb79a08ad13dd", 24),
+    ("PCM_U8", "9a33ad3db03bbd4858fd1feb6734443b27087d43d20e7eaa5ace9086cef9dc14", 24),
+])
+def test_output_bits_match_the_recorded_stream(subtype, sha256, clipped):
+    # The output bits are part of reproducibility (our choice): values recorded from this
+    # module as of commit 547ac99, before it processed blocks piece by piece.
+    y, state = dither_all(_recorded_material(), subtype)
+    assert hashlib.sha256(y.astype("<f8").tobytes()).hexdigest() == sha256
+    assert state.clipped_samples == clipped
+
+
+@pytest.mark.parametrize("layout", ["float32", "fortran", "strided"])
+def test_other_input_layouts_give_the_same_output(layout, rng):
+    x = rng.uniform(-1.05, 1.05, (40_000, 2)).astype(np.float32).astype(np.float64)
+    y = {"float32": x.astype(np.float32), "fortran": np.asfortranarray(x),
+         "strided": np.repeat(x, 2, axis=1)[:, ::2]}[layout]
+    a, sa = dither_all(x, "PCM_24")
+    b, sb = dither_all(y, "PCM_24")
+    assert np.array_equal(a, b) and sa == sb and b.flags.c_contiguous
+
+
 def test_state_survives_pickling(rng):
     x = rng.uniform(-0.5, 0.5, (2000, 2))
     _, state = dither_block(x[:1000], fresh(2), subtype="PCM_16")
@@ -148,6 +180,25 @@ def test_clipped_samples_are_counted():
     assert set(np.unique(y[np.abs(x[:, 0]) > 1.0])) == {-1.0, 1.0 - lsb}
     _, state = dither_block(x, state, subtype="PCM_16")
     assert state.clipped_samples == 2 * 500 * always.size  # accumulated
+
+
+def test_clipping_in_a_later_piece_is_counted_and_clipped():
+    # Pieces whose levels stay on the grid skip the range check; one that leaves it must not.
+    lsb = lsb_for("PCM_16")
+    x = np.zeros((100_000, 2))
+    x[90_000:90_100] = [1.5, -1.0 - 4 * lsb]
+    y, state = dither_all(x)
+    assert state.clipped_samples == 200
+    assert set(np.unique(y[90_000:90_100, 0])) == {1.0 - lsb} and set(np.unique(y[90_000:90_100, 1])) == {-1.0}
+
+
+def test_finite_samples_beyond_the_float_range_are_clipped_not_refused():
+    # 1e300 * 2**31 overflows to infinity, yet the sample is finite: clipped and counted.
+    x = np.zeros((10, 1))
+    x[3, 0], x[7, 0] = 1e300, -1e300
+    with np.errstate(over="ignore"):  # numpy's warning about the overflow, as before
+        y, state = dither_all(x, "PCM_32")
+    assert state.clipped_samples == 2 and y[3, 0] == 1.0 - 2.0**-31 and y[7, 0] == -1.0
 
 
 # --------------------------------------------------------------------------- statistics
@@ -210,6 +261,17 @@ def test_subtypes_without_a_grid_are_refused(subtype, match):
 def test_bad_blocks_are_refused(block, match):
     with pytest.raises(ParameterError, match=match):
         dither_block(block, fresh(1), subtype="PCM_16")
+
+
+@pytest.mark.parametrize("bad", [np.nan, np.inf, -np.inf])
+@pytest.mark.parametrize("frame", [0, 40_000, 49_999])  # first piece, a later one, the last frame
+def test_non_finite_samples_are_refused_in_any_piece(bad, frame):
+    # The finiteness check runs only for pieces whose rounded levels leave the grid's range,
+    # which a NaN or infinite sample always makes them do.
+    x = np.zeros((50_000, 2))
+    x[frame, 1] = bad
+    with pytest.raises(ParameterError, match="block contains NaN or infinite samples"):
+        dither_block(x, fresh(2), subtype="PCM_24")
 
 
 def test_bad_seeds_are_refused():

@@ -283,6 +283,45 @@ def test_old_states_stay_valid_after_branching():
     _assert_results_close(measure(a, rate_hz=48000), meter_result(s1))
 
 
+def _reference_hop_energies(x, rate_hz, weights):
+    """Independent reference (our choice): one sosfilt call over everything, then per-hop sums."""
+    active = [c for c, w in enumerate(weights) if w > 0]
+    y = sps.sosfilt(k_weighting_sos(rate_hz=rate_hz), x[:, active], axis=0)
+    hop = int(round(rate_hz / 10))
+    whole = y.shape[0] // hop
+    per_channel = np.square(y[: whole * hop]).reshape(whole, hop, len(active)).sum(axis=1)
+    return per_channel @ np.array([weights[c] for c in active])
+
+
+@pytest.mark.parametrize(
+    "rate_hz, weights, block_frames",
+    [
+        (48000, (1.0, 1.0), 400_000),  # blocks of several filter pieces, ending mid-hop
+        (48000, (1.0, 1.0, 1.0, 0.0, 1.41, 1.41), 4801),  # LFE left out; blocks split hops
+        (44100, (0.5, 2.0), 100_003),
+        (8000, (1.0,), 1),
+    ],
+)
+def test_hop_energies_match_a_direct_computation(rate_hz, weights, block_frames):
+    # The meter filters in pieces and sums squares per hop; the sums must equal a direct
+    # computation to rounding (1e-12 relative, our choice; observed ~1e-15).
+    rng = np.random.default_rng(12)
+    frames = 3_001 if block_frames == 1 else int(rate_hz * 11.37)
+    x = rng.standard_normal((frames, len(weights))) * rng.uniform(0.01, 0.5, len(weights))
+    state = meter_init(rate_hz=rate_hz, channels=len(weights), channel_weights=weights)
+    for start in range(0, frames, block_frames):
+        state = meter_update(x[start:start + block_frames], state)
+    np.testing.assert_allclose(state.hop_energies(), _reference_hop_energies(x, rate_hz, weights), rtol=1e-12, atol=0)
+
+
+@pytest.mark.parametrize("layout", ["fortran", "strided"])
+def test_non_contiguous_input_gives_the_same_result(layout):
+    x = np.random.default_rng(13).standard_normal((48000 * 4, 2)) * np.array([0.1, 0.2])
+    y = np.asfortranarray(x) if layout == "fortran" else np.repeat(x, 2, axis=1)[:, ::2]
+    assert not y.flags.c_contiguous
+    _assert_results_close(measure(x, rate_hz=48000), measure(y, rate_hz=48000), tol=0.0)
+
+
 def test_memory_is_one_float_per_hop():
     x = np.random.default_rng(9).standard_normal((48000 * 5 + 1234, 2)) * 0.1
     state = meter_update(x, meter_init(rate_hz=48000, channels=2))
@@ -372,6 +411,42 @@ def test_rejects_rate_too_low_for_k_weighting():
 def test_rejects_bad_weights(weights, match):
     with pytest.raises(ParameterError, match=match):
         meter_init(rate_hz=48000, channels=2, channel_weights=weights)
+
+
+@pytest.mark.parametrize("bad", [np.nan, np.inf, -np.inf])
+@pytest.mark.parametrize(
+    "frame, channel",
+    [
+        (0, 0),  # the first frame
+        (70_000, 1),  # a later filter piece
+        (94_400, 2),  # the rest of the hop a previous block left open
+        (96_500, 4),  # the hop still open at the end
+        (50_000, 3),  # the LFE channel (weight 0, not filtered)
+    ],
+)
+def test_rejects_non_finite_samples_anywhere(bad, frame, channel):
+    # Finiteness is read off the per-hop sums of squares (and checked directly for
+    # channels weighted 0): every position must still be caught.
+    x = np.random.default_rng(14).standard_normal((97_000, 6)) * 0.1
+    x[frame, channel] = bad
+    split = 94_321  # the first block ends mid-hop
+    state = meter_init(rate_hz=48000, channels=6)
+    block = x[:split]
+    if frame >= split:
+        state = meter_update(block, state)
+        block = x[split:]
+    with pytest.raises(ParameterError, match="block contains NaN or infinite samples"):
+        meter_update(block, state)
+    with pytest.raises(ParameterError, match="signal contains NaN or infinite samples"):
+        measure(x, rate_hz=48000)
+
+
+def test_finite_samples_whose_squares_overflow_are_not_called_non_finite():
+    # The check on the sums of squares falls back to the samples themselves (our choice:
+    # such input is absurd, but finite, and was accepted before).
+    x = np.full((48000, 1), 1e200)
+    state = meter_update(x, meter_init(rate_hz=48000, channels=1))
+    assert np.isinf(state.hop_energies()).all()
 
 
 def test_rejects_integer_and_non_finite_samples():

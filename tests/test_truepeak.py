@@ -192,9 +192,57 @@ def test_shortcut_equals_brute_force_exactly(name, rate_hz):
 
 
 def test_shortcut_equals_brute_force_on_long_noise():
-    # longer than one 65 536-sample piece, so the running maximum carries across pieces
+    # longer than one piece (65 536 samples, all channels), so the running maximum carries across pieces
     x = np.random.default_rng(24).standard_normal((200_000, 2)) * 0.1
     assert true_peak_dbtp(x, rate_hz=48000) == brute_force_true_peak(x, rate_hz=48000)
+
+
+def _hard_cases():
+    """Signals for the shortcut's paths and edges (our choice), each longer than one piece.
+
+    Few candidate windows (gathered) and many (whole pieces on slices, inner phases
+    first); a silent channel among loud ones; levels at which float32 screening
+    underflows or overflows; more channels than two.
+    """
+    rng = np.random.default_rng(27)
+    n = 70_000
+    t = np.arange(n)[:, None]
+    silent_left = rng.standard_normal((n, 2)) * 0.2
+    silent_left[:, 0] = 0.0
+    lowpass = np.cumsum(rng.standard_normal((n, 1)), axis=0)
+    return {
+        "clipped_noise": np.clip(rng.standard_normal((n, 2)) * 0.4, -0.5, 0.5),
+        "tone_1khz": 0.7 * np.sin(2 * np.pi * 1000.0 * t / 48000.0 + np.array([0.0, 1.0])),
+        "silent_left": silent_left,
+        "random_walk": lowpass / np.abs(lowpass).max(),
+        "float64_subnormal": rng.standard_normal((n, 1)) * 1e-310,
+        "float32_underflow": rng.standard_normal((n, 2)) * 1e-41,
+        "beyond_float32": rng.standard_normal((n, 1)) * 1e39,
+        "six_channels": rng.standard_normal((n, 6)) * np.array([0.3, 0.01, 0.1, 0.0, 0.5, 0.05]),
+    }
+
+
+HARD_CASES = _hard_cases()
+
+
+@pytest.mark.parametrize("rate_hz", [48000, 96000])
+@pytest.mark.parametrize("name", sorted(HARD_CASES))
+def test_shortcut_equals_brute_force_on_hard_cases(name, rate_hz):
+    x = HARD_CASES[name]
+    assert true_peak_dbtp(x, rate_hz=rate_hz) == brute_force_true_peak(x, rate_hz=rate_hz)
+
+
+def test_sample_peak_is_exact_when_float32_cannot_tell_samples_apart():
+    # The screening is in float32: 0.5 + 2**-40 rounds to 0.5 there, yet it is the sample peak
+    # (and, alone, the true peak of an isolated sample), in a later piece than the 0.5.
+    x = np.zeros((200_000, 1))
+    x[10, 0] = 0.5
+    x[150_000, 0] = 0.5 + 2.0**-40
+    state = truepeak_init(rate_hz=48000, channels=1)
+    for start in range(0, x.shape[0], 40_000):
+        state = truepeak_update(x[start:start + 40_000], state)
+    assert state.sample_peak[0] == 0.5 + 2.0**-40
+    assert truepeak_result(state) == brute_force_true_peak(x, rate_hz=48000)
 
 
 # --------------------------------------------------------------------------- streaming
@@ -214,6 +262,15 @@ def _stream(x, rate_hz, block_frames):
 def test_block_by_block_equals_one_pass_exactly(frames, block_frames):
     x = np.random.default_rng(25).standard_normal((frames, 2)) * np.array([0.25, 0.5])
     assert _stream(x, 48000, block_frames) == true_peak_dbtp(x, rate_hz=48000)
+
+
+@pytest.mark.parametrize("layout", ["fortran", "strided"])
+def test_non_contiguous_blocks_give_the_same_result(layout):
+    # Blocks that are not C-contiguous are copied piece by piece instead of read in place.
+    x = np.random.default_rng(28).standard_normal((100_000, 2)) * np.array([0.25, 0.5])
+    y = np.asfortranarray(x) if layout == "fortran" else np.repeat(x, 2, axis=1)[:, ::2]
+    assert not y.flags.c_contiguous
+    assert _stream(y, 48000, 33_333) == _stream(x, 48000, 33_333) == brute_force_true_peak(x, rate_hz=48000)
 
 
 def test_reading_does_not_disturb_the_stream():
@@ -251,6 +308,16 @@ def test_rejects_1d_signal(func):
 def test_rejects_bad_rate(rate):
     with pytest.raises(ParameterError, match=r"rate_hz = .*: must be > 0 Hz"):
         truepeak_init(rate_hz=rate, channels=1)
+
+
+@pytest.mark.parametrize("bad", [np.nan, np.inf, -np.inf])
+@pytest.mark.parametrize("frame, channel", [(0, 0), (99_999, 2), (65_000, 1)])
+def test_rejects_non_finite_samples_anywhere(bad, frame, channel):
+    # in the first piece, in the last frame, in a later piece; in any channel of three
+    x = np.random.default_rng(29).standard_normal((100_000, 3)) * 0.1
+    x[frame, channel] = bad
+    with pytest.raises(ParameterError, match="NaN or infinite"):
+        truepeak_update(x, truepeak_init(rate_hz=48000, channels=3))
 
 
 def test_rejects_non_finite_samples_and_keeps_old_state():
