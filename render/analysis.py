@@ -397,11 +397,12 @@ def _band_responses(bands, rate, n_fft):
     few ms per band where freqz_sos takes ~30 ms on a 6 s grid.  The conjugate
     is stored because the decay analysis filters time-reversed.
     """
-    impulses = np.zeros((len(bands), n_fft))
+    # One band at a time (zero-padded by rfft itself), so that building the table needs no
+    # more memory than the table: the same numbers as one batched transform of the padded rows.
+    conj = np.empty((len(bands), n_fft // 2 + 1), dtype=np.complex128)
     for k, band in enumerate(bands):
-        h = _band_impulse(band, rate, 3)[1]
-        impulses[k, : h.shape[0]] = h
-    conj = np.conj(scipy.fft.rfft(impulses, axis=-1))
+        conj[k] = scipy.fft.rfft(_band_impulse(band, rate, 3)[1], n=n_fft)
+    np.conjugate(conj, out=conj)
     conj.setflags(write=False)
     return conj
 
@@ -1093,9 +1094,15 @@ def _band_decay_table(x, rate, bands, names):
     direct sound to just before the broadband onset, and this keeps it.
     Returns (table[band][channel] of _decays results, channel spectra, n_fft).
     """
-    frames, channels = x.shape
+    frames = x.shape[0]
     n_fft = _fft_size(frames, bands, rate)
     spectra = _channel_spectra(x, n_fft)
+    return _band_decays(spectra, frames, rate, bands, names, n_fft), spectra, n_fft
+
+
+def _band_decays(spectra, frames, rate, bands, names, n_fft):
+    """The decay table of :func:`_band_decay_table` from the channel spectra (see there)."""
+    channels = spectra.shape[0]
     responses = _band_responses(bands, rate, n_fft)
     table = []
     for k, band in enumerate(bands):
@@ -1105,7 +1112,8 @@ def _band_decay_table(x, rate, bands, names):
         table.append(
             [_decays(_backward_sum_inplace(power[c, onset:]), rate, names, band) for c in range(channels)]
         )
-    return table, spectra, n_fft
+        del power
+    return table
 
 
 def _normalised(x):
@@ -1274,11 +1282,24 @@ def band_t30_s(ir, *, rate_hz, bands_hz=OCTAVE_BANDS_HZ):
     >>> t30.shape, bool(np.all(np.abs(t30 / 0.25 - 1) < 0.05))
     ((2, 1), True)
     """
-    x, rate, bands = _check_all(ir, rate_hz, bands_hz)
-    out = np.full((len(bands), x.shape[1]), np.nan)
+    # As _check_all, but the response is normalised straight into the zero-padded transform input
+    # (this runs once per calibration pass of the synthesis: no copies of the response besides it).
+    x = _check_ir(ir)
+    rate = _check_rate(rate_hz)
+    bands = _check_bands(bands_hz)
+    _require_signal(x)
+    frames, channels = x.shape
+    out = np.full((len(bands), channels), np.nan)
     rows = [k for k, b in enumerate(bands) if _band_fits(b, rate)]
     if rows:
-        table = _band_decay_table(x, rate, tuple(bands[k] for k in rows), ("T30",))[0]
+        usable = tuple(bands[k] for k in rows)
+        n_fft = _fft_size(frames, usable, rate)
+        padded = np.zeros((channels, n_fft))
+        np.divide(x.T, max(float(np.max(x)), -float(np.min(x))), out=padded[:, :frames])  # = _normalised(x).T
+        del x
+        spectra = scipy.fft.rfft(padded, axis=-1)  # = _channel_spectra(_normalised(x), n_fft)
+        del padded
+        table = _band_decays(spectra, frames, rate, usable, ("T30",), n_fft)
         for row, per_channel in zip(rows, table):
             for c, (values, _, _) in enumerate(per_channel):
                 if values["T30"] is not None:

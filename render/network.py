@@ -42,6 +42,8 @@ __all__ = [
     "one_pole_loop_spectrum",
     "unit_delay_phasors",
     "comb_spectrum",
+    "comb_bank_spectrum",
+    "allpass_chain_spectrum",
     "delay_phasor",
     "allpass_spectrum",
     "NetworkDesign",
@@ -68,6 +70,9 @@ MEAN_DELAY_RANGE_S = (0.008, 0.050)
 MAX_ALLPASS_GAIN = 0.7
 #: Number of series allpass diffusers per network.
 ALLPASS_COUNT = 4
+#: Bins evaluated at a time by :func:`comb_bank_spectrum` and :func:`allpass_chain_spectrum`: the
+#: temporaries of one block stay in the processor's cache and cost kilobytes, not megabytes (our choice).
+BLOCK_BINS = 8192
 
 
 def _check_delay(delay_frames):
@@ -212,6 +217,179 @@ def allpass_spectrum(delay_frames, *, gain, table):
         raise ParameterError(f"gain = {gain!r}: an allpass needs |g| < 1")
     zm = _delay_phasor(_check_delay(delay_frames), table)
     return (zm - gain) / (1.0 - gain * zm)
+
+
+def _check_grid(out, bins, table, what):
+    n_fft = table.shape[0] if isinstance(table, np.ndarray) and table.ndim == 1 else 0
+    if n_fft < 2 or table.dtype != np.complex128:
+        shape = getattr(table, "shape", None)
+        raise ParameterError(f"table has shape {shape}: expected unit_delay_phasors(n_fft), complex, n_fft ≥ 2")
+    if not 1 <= bins <= n_fft // 2 + 1:
+        raise ParameterError(f"{what} covers {bins} bins: expected 1 to n_fft // 2 + 1 = {n_fft // 2 + 1}")
+    if out is None:
+        return np.zeros(bins, dtype=np.complex128)
+    if not (isinstance(out, np.ndarray) and out.dtype == np.complex128 and out.shape == (bins,)):
+        raise ParameterError(
+            f"out has dtype {getattr(out, 'dtype', None)} and shape {getattr(out, 'shape', None)}: "
+            f"expected complex128 of shape ({bins},)"
+        )
+    return out
+
+
+def _gather_phasors(delay_frames, table, start, offsets, index, out):
+    """``z^-K`` at bins ``start … start + len(out) - 1`` into ``out`` (table entries, exact).
+
+    ``offsets`` holds ``(r K) mod n_fft`` for r = 0, 1, …; the index ``((start + r) K) mod n_fft``
+    is then ``offsets[r] + (start K mod n_fft)``, below ``2 n_fft``, which ``mode="wrap"`` folds.
+    """
+    n_fft = table.shape[0]
+    count = out.shape[0]
+    np.add(offsets[:count], (start * delay_frames) % n_fft, out=index[:count])
+    np.take(table, index[:count], mode="wrap", out=out)
+    return out
+
+
+def comb_bank_spectrum(delays_frames, *, signs, log_gain_per_frame, table, out=None):
+    """A bank of parallel combs with the ideal loop gain, each of unit energy, on an rfft grid.
+
+    ``Σ_i s_i sqrt(1 - G_i²) z^-K_i / (1 - G_i z^-K_i)`` with the zero-phase
+    loop gain ``G_i(ω) = exp(K_i λ(ω))``: λ is the natural log of the gain per
+    frame of delay, ``λ = -3 ln(10) / (fs T60(ω))`` for a decay of T60(ω)
+    (Schroeder's relation per frequency, Jot & Chaigne 1991), so that every comb
+    decays at T60(ω) whatever its delay.  A comb's echoes ``G^m`` have energy
+    ``1 / (1 - G²)``, so the factor ``sqrt(1 - G²)`` gives each comb unit energy
+    at every frequency (our choice of normalisation).
+
+    The bins are evaluated in blocks of :data:`BLOCK_BINS` with in-place
+    arithmetic, so besides ``out`` the memory used is a few blocks, and the
+    result equals, bit for bit, adding up the terms
+    ``(s_i * sqrt(1 - G_i * G_i)) * comb_spectrum(K_i, loop=G_i, table=table)``
+    in the order of the delays.
+
+    Parameters
+    ----------
+    delays_frames : sequence of int
+        Loop delays K_i in frames, each ≥ 1.
+    signs : sequence of float
+        s_i, one per delay (±1 in :func:`design_network`).
+    log_gain_per_frame : ndarray, shape (bins,)
+        λ at bins 0 … bins - 1 of the grid, float64, < 0 (so that ``|G| < 1``);
+        ``bins`` is at most ``n_fft // 2 + 1``.
+    table : ndarray, shape (n_fft,)
+        :func:`unit_delay_phasors` of the grid.
+    out : ndarray, shape (bins,), complex128, optional
+        The sum is added to it in place (and it is returned); a new array otherwise.
+
+    Returns
+    -------
+    ndarray, shape (bins,), complex128
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> table = unit_delay_phasors(64)
+    >>> lam = np.full(33, np.log(0.5))  # G = 0.5 per frame: G = 0.5 ** K
+    >>> bank = comb_bank_spectrum([3], signs=[1.0], log_gain_per_frame=lam, table=table)
+    >>> h = np.fft.irfft(bank, 64)  # z^-3 / (1 - 0.125 z^-3), times sqrt(1 - 0.125 ** 2)
+    >>> np.round(h[[3, 6, 9]] / np.sqrt(1 - 0.125 ** 2), 6).tolist()
+    [1.0, 0.125, 0.015625]
+    """
+    lam = log_gain_per_frame
+    if not (isinstance(lam, np.ndarray) and lam.dtype == np.float64 and lam.ndim == 1):
+        raise ParameterError(
+            f"log_gain_per_frame has dtype {getattr(lam, 'dtype', None)} and shape {getattr(lam, 'shape', None)}: "
+            f"expected a 1-D float64 array"
+        )
+    bins = lam.shape[0]
+    delays = [_check_delay(k) for k in delays_frames]
+    signs = [float(s) for s in signs]
+    if len(signs) != len(delays):
+        raise ParameterError(f"signs has {len(signs)} values: expected one per delay ({len(delays)})")
+    if not np.all(lam < 0.0):
+        raise ParameterError("log_gain_per_frame: every value must be < 0 (a loop gain below 1)")
+    out = _check_grid(out, bins, table, "log_gain_per_frame")
+    n_fft = table.shape[0]
+    block = min(BLOCK_BINS, bins)
+    ramp = np.arange(block, dtype=np.int64)
+    offsets = [(ramp * (k % n_fft)) % n_fft for k in delays]
+    index = np.empty(block, dtype=np.int64)
+    zk = np.empty(block, dtype=np.complex128)
+    comb = np.empty(block, dtype=np.complex128)
+    gain = np.empty(block)
+    weight = np.empty(block)
+    for start in range(0, bins, block):
+        stop = min(bins, start + block)
+        count = stop - start
+        lam_b, acc_b = lam[start:stop], out[start:stop]
+        z, c, g, w = zk[:count], comb[:count], gain[:count], weight[:count]
+        for k, sign, off in zip(delays, signs, offsets):
+            _gather_phasors(k, table, start, off, index, z)
+            np.multiply(k, lam_b, out=g)
+            np.exp(g, out=g)  # G = exp(K λ)
+            np.multiply(g, z, out=c)
+            np.subtract(1.0, c, out=c)
+            np.divide(z, c, out=c)  # z^-K / (1 - G z^-K)
+            np.multiply(g, g, out=w)
+            np.subtract(1.0, w, out=w)
+            np.sqrt(w, out=w)
+            np.multiply(sign, w, out=w)  # s sqrt(1 - G²)
+            np.multiply(w, c, out=c)
+            np.add(acc_b, c, out=acc_b)
+    return out
+
+
+def allpass_chain_spectrum(delays_frames, *, gain, table, bins=None, out=None):
+    """Schroeder allpasses in series, ``Π_i (-g + z^-M_i) / (1 - g z^-M_i)``, on an rfft grid.
+
+    Evaluated in blocks of :data:`BLOCK_BINS`; equals, bit for bit, a product
+    started at 1 and multiplied by :func:`allpass_spectrum` of each delay in turn.
+
+    Parameters
+    ----------
+    delays_frames : sequence of int
+        Delays M_i in frames, each ≥ 1.
+    gain : float
+        g, |g| < 1.
+    table : ndarray, shape (n_fft,)
+        :func:`unit_delay_phasors` of the grid.
+    bins : int, optional
+        Bins 0 … bins - 1 are evaluated (default: all, ``n_fft // 2 + 1``).
+    out : ndarray, shape (bins,), complex128, optional
+        Written with the product (and returned); a new array otherwise.
+
+    Returns
+    -------
+    ndarray, shape (bins,), complex128
+        Unit magnitude at every bin.
+    """
+    if not abs(gain) < 1:
+        raise ParameterError(f"gain = {gain!r}: an allpass needs |g| < 1")
+    delays = [_check_delay(m) for m in delays_frames]
+    if bins is None:
+        bins = table.shape[0] // 2 + 1 if isinstance(table, np.ndarray) and table.ndim == 1 else 0
+    out = _check_grid(out, int(bins), table, "bins")
+    n_fft = table.shape[0]
+    block = min(BLOCK_BINS, out.shape[0])
+    ramp = np.arange(block, dtype=np.int64)
+    offsets = [(ramp * (m % n_fft)) % n_fft for m in delays]
+    index = np.empty(block, dtype=np.int64)
+    zm = np.empty(block, dtype=np.complex128)
+    num = np.empty(block, dtype=np.complex128)
+    den = np.empty(block, dtype=np.complex128)
+    for start in range(0, out.shape[0], block):
+        stop = min(out.shape[0], start + block)
+        count = stop - start
+        prod = out[start:stop]
+        prod.fill(1.0)
+        z, a, b = zm[:count], num[:count], den[:count]
+        for m, off in zip(delays, offsets):
+            _gather_phasors(m, table, start, off, index, z)
+            np.subtract(z, gain, out=a)
+            np.multiply(gain, z, out=b)
+            np.subtract(1.0, b, out=b)
+            np.divide(a, b, out=a)
+            np.multiply(prod, a, out=prod)
+    return out
 
 
 def primes_near(targets, *, exclude=()):

@@ -50,8 +50,10 @@ ENGINE_VERSION = "2"
 MIC_SPACING_M = 0.17
 #: Envelope block for trimming the tail (s).
 ENVELOPE_BLOCK_S = 0.005
-#: Largest memory for keeping the combs' delay phasors between calibration passes (bytes).
-PHASOR_CACHE_BYTES = 160 * 2**20
+#: Frames mixed from the networks into the channels at a time (bounds that step's memory).
+MIX_BLOCK_FRAMES = 32768
+#: Envelope blocks measured at a time when trimming (bounds that step's memory).
+ENVELOPE_CHUNK_BLOCKS = 512
 #: The grid holds this much more than the target's longest decay (room for calibration).
 DECAY_MARGIN = 1.3
 
@@ -166,6 +168,39 @@ def synthesize(
     >>> r.ir.shape[1], round(float((r.ir ** 2).sum()), 9), r.max_error_pct < 3
     (1, 1.0, True)
     """
+    key = _validated_key(
+        room,
+        rate_hz=rate_hz,
+        channels=channels,
+        tail_floor_db=tail_floor_db,
+        calibrate=calibrate,
+        tolerance_pct=tolerance_pct,
+        max_iterations=max_iterations,
+        alias_db=alias_db,
+    )
+    hit = _cache_get(key)
+    if hit is not None:
+        return hit
+    result = _synthesize(
+        room,
+        rate_hz=float(rate_hz),
+        channels=channels,
+        tail_floor_db=float(tail_floor_db),
+        calibrate=calibrate,
+        tolerance_pct=float(tolerance_pct),
+        max_iterations=max_iterations,
+        alias_db=float(alias_db),
+    )
+    _cache_put(key, result)
+    return result
+
+
+def _validated_key(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_pct, max_iterations, alias_db):
+    """Check :func:`synthesize`'s arguments (ParameterError) and return its cache key.
+
+    The key names everything that shapes the response; :mod:`render.response_cache`
+    builds its on-disk key from it.
+    """
     if not isinstance(room, Room):
         raise ParameterError(f"room = {room!r}: expected a Room")
     if not (isinstance(rate_hz, (int, float)) and 8000 <= rate_hz <= 384000):
@@ -180,7 +215,7 @@ def synthesize(
         raise ParameterError(f"tolerance_pct = {tolerance_pct!r}: must be > 0 %")
     if isinstance(max_iterations, bool) or not isinstance(max_iterations, int) or max_iterations < 1:
         raise ParameterError(f"max_iterations = {max_iterations!r}: must be a whole number ≥ 1")
-    key = (
+    return (
         ENGINE_VERSION,
         room.fingerprint(),
         float(rate_hz),
@@ -191,24 +226,22 @@ def synthesize(
         max_iterations,
         float(alias_db),
     )
+
+
+def _cache_get(key):
+    """The in-process cache's response for ``key`` (marked as recently used), or None."""
     hit = _CACHE.get(key)
     if hit is not None:
         _CACHE.move_to_end(key)
-        return hit
-    result = _synthesize(
-        room,
-        rate_hz=float(rate_hz),
-        channels=channels,
-        tail_floor_db=float(tail_floor_db),
-        calibrate=calibrate,
-        tolerance_pct=float(tolerance_pct),
-        max_iterations=max_iterations,
-        alias_db=float(alias_db),
-    )
-    _CACHE[key] = result
+    return hit
+
+
+def _cache_put(key, response):
+    """Keep ``response`` in the in-process cache (the least recently used beyond 16 is dropped)."""
+    _CACHE[key] = response
+    _CACHE.move_to_end(key)
     while len(_CACHE) > _CACHE_SIZE:
         _CACHE.popitem(last=False)
-    return result
 
 
 def _mic_positions(room, channels):
@@ -269,19 +302,62 @@ def _early_part(room, *, rate_hz, channels, freqs_hz, n_fft, mix_s):
         for n in np.unique(orders):
             sel = orders == n
             taps = early.fractional_delay_taps(delay_frames[sel], weight[sel] * r0 / dist[sel], frames=n_fft)
-            spectrum += scipy.fft.rfft(taps, workers=1) * beta ** int(n)
-        out[ch] = np.roll(scipy.fft.irfft(spectrum, n_fft, workers=1), -early.SINC_HALF_TAPS)
+            part = scipy.fft.rfft(taps, workers=1)
+            del taps
+            np.multiply(part, beta ** int(n), out=part)
+            spectrum += part
+            del part
+        # Rotate left by the sinc's half length (np.roll, without its temporary).
+        h = early.SINC_HALF_TAPS % n_fft
+        signal = scipy.fft.irfft(spectrum, n_fft, workers=1)
+        del spectrum
+        out[ch, : n_fft - h] = signal[h:]
+        out[ch, n_fft - h :] = signal[:h]
     return out, (first_s if math.isfinite(first_s) else 0.0)
 
 
-def _fade_in(n, start, stop):
-    w = np.ones(n)
+def _fade_in_head(n, start, stop):
+    """The first frames of a fade-in window of ``n`` frames (every later frame of it is 1).
+
+    0 before ``start``, a raised cosine from ``start`` to ``stop``, 1 after;
+    ``start`` and ``stop`` are clipped to the window.
+    """
     start = max(0, min(start, n))
     stop = max(start + 1, min(stop, n))
-    w[:start] = 0.0
+    w = np.zeros(min(stop, n))
     ramp = np.arange(stop - start) / (stop - start)
-    w[start:stop] = 0.5 - 0.5 * np.cos(np.pi * ramp)
+    w[start:stop] = (0.5 - 0.5 * np.cos(np.pi * ramp))[: w.shape[0] - start]
     return w
+
+
+def _envelope_block(rate_hz):
+    return max(1, int(round(ENVELOPE_BLOCK_S * rate_hz)))
+
+
+def _trim_end(ir, *, rate_hz, floor_db):
+    """Frames kept by :func:`trim_tail` (``ir`` may be any (frames, channels) view), or None to keep all."""
+    frames = ir.shape[0]
+    block = _envelope_block(rate_hz)
+    n_blocks = frames // block
+    if n_blocks == 0 or not np.any(ir):
+        return None
+    # RMS per block, the largest over channels, a chunk of blocks at a time (each chunk laid out
+    # frames-first, as the envelope was always measured, so the sums round alike).
+    env = np.empty(n_blocks)
+    for b0 in range(0, n_blocks, ENVELOPE_CHUNK_BLOCKS):
+        b1 = min(n_blocks, b0 + ENVELOPE_CHUNK_BLOCKS)
+        part = np.ascontiguousarray(ir[b0 * block : b1 * block])
+        env[b0:b1] = np.sqrt(np.mean(part.reshape(b1 - b0, block, -1) ** 2, axis=1)).max(axis=1)
+    above = np.nonzero(env > env.max() * db_to_gain(floor_db))[0]
+    last = int(above[-1]) if above.size else 0
+    return min(frames, (last + 2) * block)
+
+
+def _fade_out(out, *, rate_hz):
+    """Raised-cosine fade over the last envelope block of ``out``, in place."""
+    end = out.shape[0]
+    fade = min(_envelope_block(rate_hz), end)
+    out[end - fade :] *= (0.5 + 0.5 * np.cos(np.pi * (np.arange(1, fade + 1) / fade)))[:, None]
 
 
 def trim_tail(ir, *, rate_hz, floor_db):
@@ -301,19 +377,13 @@ def trim_tail(ir, *, rate_hz, floor_db):
     Returns
     -------
     ndarray, shape (frames_kept, channels)
+        A new C-contiguous array.
     """
-    frames = ir.shape[0]
-    block = max(1, int(round(ENVELOPE_BLOCK_S * rate_hz)))
-    n_blocks = frames // block
-    if n_blocks == 0 or not np.any(ir):
+    end = _trim_end(ir, rate_hz=rate_hz, floor_db=floor_db)
+    if end is None:
         return ir.copy()
-    env = np.sqrt(np.mean(ir[: n_blocks * block].reshape(n_blocks, block, -1) ** 2, axis=1)).max(axis=1)
-    above = np.nonzero(env > env.max() * db_to_gain(floor_db))[0]
-    last = int(above[-1]) if above.size else 0
-    end = min(frames, (last + 2) * block)
     out = ir[:end].copy()
-    fade = min(block, end)
-    out[end - fade :] *= (0.5 + 0.5 * np.cos(np.pi * (np.arange(1, fade + 1) / fade)))[:, None]
+    _fade_out(out, rate_hz=rate_hz)
     return out
 
 
@@ -340,23 +410,26 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
         real=True,
     )
     n_fft += n_fft % 2
-    freqs_hz = np.arange(n_fft // 2 + 1) * (rate_hz / n_fft)
-    table = network.unit_delay_phasors(n_fft)
+    bins = n_fft // 2 + 1
+    freqs_hz = np.arange(bins) * (rate_hz / n_fft)
 
     er, first_s = _early_part(room, rate_hz=rate_hz, channels=channels, freqs_hz=freqs_hz, n_fft=n_fft, mix_s=mix_s)
     start_frame = int(round(first_s * rate_hz))
     stop_frame = max(start_frame + 1, int(round(mix_s * rate_hz)))
-    window = _fade_in(n_fft, start_frame, stop_frame)
+    fade_head = _fade_in_head(n_fft, start_frame, stop_frame)  # the fade-in window is 1 after these frames
+    del freqs_hz
 
-    # Spectral balance: diffuse-field energy is proportional to T60(f) (w = 4P / (cA), A ∝ V / T).
-    t_target_bins = room.decay_at(freqs_hz)
-    balance = np.sqrt(t_target_bins / room.decay_mid_s)
-    allpasses = []
-    for delays in design.allpass_delays:
-        ap = np.ones(n_fft // 2 + 1, dtype=complex)
-        for m in delays:
-            ap *= network.allpass_spectrum(m, gain=design.allpass_gain, table=table)
-        allpasses.append(ap)
+    def grid_curves():
+        # (log10 of each bin's frequency, spectral balance), recomputed each pass (a few ms)
+        # rather than kept: the balance follows diffuse-field theory, energy ∝ T60(f)
+        # (w = 4P / (cA), A ∝ V / T).
+        log_bins = np.arange(bins) * (rate_hz / n_fft)
+        balance = room.decay_at(log_bins)
+        balance /= room.decay_mid_s
+        np.sqrt(balance, out=balance)
+        np.maximum(log_bins, 1.0, out=log_bins)
+        np.log10(log_bins, out=log_bins)
+        return log_bins, balance
 
     # Theoretical diffuse energy after the mixing time, direct sound = 1 (see DEVELOPERS.md):
     # per-frame energy density 4π r² c / (V fs) · exp(-13.8155 t / T).
@@ -364,34 +437,51 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
     r0 = room.distance_m
     target_late = 4.0 * math.pi * r0**2 * c / room.volume_m3 / decay_rate * math.exp(-decay_rate * mix_s)
     log_bands = np.log10(np.array(bands))
-    log_bins = np.log10(np.maximum(freqs_hz, 1.0))
-
-    # The comb phasors z^-K do not change between calibration passes: keep them when they fit
-    # in PHASOR_CACHE_BYTES, recompute them each pass otherwise (very long rooms).
-    n_combs_total = sum(len(d) for d in design.comb_delays)
-    phasors = None
-    if n_combs_total * (n_fft // 2 + 1) * 16 <= PHASOR_CACHE_BYTES:
-        phasors = [[network.delay_phasor(k, table=table) for k in delays] for delays in design.comb_delays]
+    # Memory: nothing of size n_fft is kept per comb or allpass; the spectra are evaluated in small
+    # blocks of bins (network.comb_bank_spectrum), so a pass needs the networks' time signals,
+    # one spectrum and the unit phasor table, whatever the number of combs.
+    table = network.unit_delay_phasors(n_fft)
+    ln_gain = -3.0 * math.log(10.0)  # ln of the loop gain per frame of delay is ln_gain / (fs T60)
 
     def render_tail(design_bands_s):
         # design_bands_s: (networks, bands) loop-gain design curve of each network.
         nets = np.empty((design.networks, n_fft))
+        log_bins, balance = grid_curves()
         for j in range(design.networks):
-            t_bins = np.interp(log_bins, log_bands, design_bands_s[j])
-            log_decay_per_frame = -3.0 * math.log(10.0) / (rate_hz * t_bins)  # ln G per frame of delay
-            acc = np.zeros(n_fft // 2 + 1, dtype=complex)
-            for i, (k, sign) in enumerate(zip(design.comb_delays[j], design.comb_signs[j])):
-                g = np.exp(k * log_decay_per_frame)
-                zk = phasors[j][i] if phasors is not None else None
-                acc += (sign * np.sqrt(1.0 - g * g)) * network.comb_spectrum(k, loop=g, table=table, phasor=zk)
-            acc *= allpasses[j] * balance / math.sqrt(len(design.comb_delays[j]))
+            lam = np.interp(log_bins, log_bands, design_bands_s[j])  # T60 at each bin
+            np.multiply(rate_hz, lam, out=lam)
+            np.divide(ln_gain, lam, out=lam)  # ln G per frame of delay
+            acc = network.comb_bank_spectrum(
+                design.comb_delays[j], signs=design.comb_signs[j], log_gain_per_frame=lam, table=table
+            )
+            del lam
+            post = network.allpass_chain_spectrum(design.allpass_delays[j], gain=design.allpass_gain, table=table)
+            np.multiply(post, balance, out=post)
+            np.divide(post, math.sqrt(len(design.comb_delays[j])), out=post)
+            np.multiply(acc, post, out=acc)
+            del post
+            if j == design.networks - 1:
+                del log_bins, balance  # not needed for the last transform
             nets[j] = scipy.fft.irfft(acc, n_fft, workers=1)
-        tail = design.mix @ nets
-        tail *= window
-        late = np.sum(tail[:, stop_frame:] ** 2, axis=1)
+            del acc
+        # Mix the networks into the channels block by block, each block written over the first
+        # rows of `nets` (a block of the output depends only on the same block of the input).
+        for a in range(0, n_fft, MIX_BLOCK_FRAMES):
+            nets[:channels, a : a + MIX_BLOCK_FRAMES] = design.mix @ nets[:, a : a + MIX_BLOCK_FRAMES]
+        tail = nets[:channels]  # (channels, n_fft)
+        tail[:, : fade_head.shape[0]] *= fade_head
+        late = np.empty(channels)
+        square = np.empty(n_fft - min(stop_frame, n_fft))
+        for ch in range(channels):
+            late[ch] = np.sum(np.square(tail[ch, stop_frame:], out=square))
+        del square
         tail *= np.sqrt(target_late / np.maximum(late, 1e-300))[:, None]
-        wet = (er + tail).T
-        return trim_tail(np.ascontiguousarray(wet), rate_hz=rate_hz, floor_db=tail_floor_db)
+        np.add(er, tail, out=tail)
+        end = _trim_end(tail.T, rate_hz=rate_hz, floor_db=tail_floor_db)
+        wet = np.ascontiguousarray(tail[:, :end].T)  # (frames, channels); `nets` is freed on return
+        if end is not None:
+            _fade_out(wet, rate_hz=rate_hz)
+        return wet
 
     # Each channel is calibrated on its own measurement (its own network); a network shared by
     # all channels (spread < 1) follows their mean.
@@ -403,6 +493,7 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
     iterations = 0
     while True:
         iterations += 1
+        wet = None  # the last pass's response is not kept while the next one is rendered
         wet = render_tail(design_s)
         measured_ch = analysis.band_t30_s(wet, rate_hz=rate_hz, bands_hz=bands).T  # (channels, bands)
         err = np.abs(measured_ch / targets[None, :] - 1.0) * 100.0
@@ -419,6 +510,7 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
         if design.networks > channels:
             per_network[channels:] = np.exp(np.log(ratio).mean(axis=0))
         design_s = np.clip(design_s * per_network, 0.5 * targets, DECAY_MARGIN * targets)
+    del er, table
     finite = np.isfinite(measured_ch)
     measured = np.where(finite.any(axis=0), np.where(finite, measured_ch, 0.0).sum(axis=0) / np.maximum(finite.sum(axis=0), 1), np.nan)
 

@@ -138,3 +138,91 @@ def test_primes_near_are_distinct_primes():
     out = network.primes_near([10, 10, 10, 100, 2], exclude=[11])
     assert len(set(out)) == 5 and 11 not in out
     assert all(all(p % d for d in range(2, int(p ** 0.5) + 1)) for p in out)
+
+
+def _bank_by_terms(delays, signs, lam, table, start=0.0):
+    """The bank written out term by term (added to ``start``), as the synthesis used to sum it."""
+    acc = np.full(lam.shape[0], start, dtype=complex)
+    for k, s in zip(delays, signs):
+        g = np.exp(k * lam)
+        z = network.delay_phasor(k, table=table)[: lam.shape[0]]
+        acc += (s * np.sqrt(1.0 - g * g)) * (z / (1.0 - g * z))  # comb_spectrum's formula, on these bins
+    return acc
+
+
+@pytest.mark.parametrize("n_fft", [1000, 2 * network.BLOCK_BINS + 6, 50000])
+@pytest.mark.parametrize("delays", [(1, 2, 3), (37, 401, 1103, 60001)])
+def test_comb_bank_equals_its_terms_bit_for_bit(n_fft, delays):
+    # Our choice: the blocked, in-place bank must give exactly the sum of its terms (the engine's
+    # output must not change without an ENGINE_VERSION bump), for grids smaller and larger than a
+    # block, and delays longer than the grid.
+    rng = np.random.default_rng(11)
+    table = network.unit_delay_phasors(n_fft)
+    lam = -rng.uniform(1e-5, 1e-2, n_fft // 2 + 1)
+    signs = rng.choice([-1.0, 1.0], len(delays))
+    bank = network.comb_bank_spectrum(delays, signs=signs, log_gain_per_frame=lam, table=table)
+    assert bank.tobytes() == _bank_by_terms(delays, signs, lam, table).tobytes()
+    # Added to `out` in place, over fewer bins than the grid.
+    part = lam[: n_fft // 4]
+    out = np.full(part.shape[0], 1.0 + 2.0j)
+    assert network.comb_bank_spectrum(delays, signs=signs, log_gain_per_frame=part, table=table, out=out) is out
+    assert out.tobytes() == _bank_by_terms(delays, signs, part, table, start=1.0 + 2.0j).tobytes()
+
+
+@pytest.mark.parametrize("gain_per_frame", [0.999, 0.99])
+def test_comb_bank_equals_lfilter(gain_per_frame):
+    # scipy.signal.lfilter as the reference library: with a loop gain G = g^K at every frequency each
+    # comb is 1 / (1 - G z^-K) delayed by K, weighted s sqrt(1 - G^2).
+    delays, signs = (97, 211, 379), (1.0, -1.0, 1.0)
+    n_fft = int(max(delays) * math.log(1e-13) / math.log(gain_per_frame ** min(delays))) + 2 * max(delays)
+    n_fft += n_fft % 2
+    lam = np.full(n_fft // 2 + 1, math.log(gain_per_frame))
+    ours = np.fft.irfft(
+        network.comb_bank_spectrum(delays, signs=signs, log_gain_per_frame=lam, table=network.unit_delay_phasors(n_fft)),
+        n_fft,
+    )
+    impulse = np.zeros(n_fft)
+    impulse[0] = 1.0
+    ref = np.zeros(n_fft)
+    for k, s in zip(delays, signs):
+        g = gain_per_frame ** k
+        b = np.zeros(k + 1)
+        b[k] = 1.0
+        a = np.zeros(k + 1)
+        a[0], a[k] = 1.0, -g
+        ref += s * math.sqrt(1.0 - g * g) * scipy.signal.lfilter(b, a, impulse)
+    assert np.max(np.abs(ours - ref)) <= 1e-9 * np.max(np.abs(ref))
+
+
+@pytest.mark.parametrize("n_fft", [64, 2 * network.BLOCK_BINS + 6])
+@pytest.mark.parametrize("gain", [0.0, 0.7, -0.5])
+def test_allpass_chain_is_the_product_of_its_allpasses(n_fft, gain):
+    # Our choice: bit for bit the product started at 1 (as the engine formed it); |A| = 1 (PASP).
+    table = network.unit_delay_phasors(n_fft)
+    delays = (3, 13, 31, 97)
+    expected = np.ones(n_fft // 2 + 1, dtype=complex)
+    for m in delays:
+        expected *= network.allpass_spectrum(m, gain=gain, table=table)
+    chain = network.allpass_chain_spectrum(delays, gain=gain, table=table)
+    assert chain.tobytes() == expected.tobytes()
+    assert np.max(np.abs(np.abs(chain) - 1.0)) < 1e-12
+
+
+@pytest.mark.parametrize(
+    "kwargs, match",
+    [
+        (dict(signs=[1.0]), "signs has 1 values: expected one per delay"),
+        (dict(log_gain_per_frame=np.zeros(5)), "every value must be < 0"),
+        (dict(log_gain_per_frame=-np.ones(5, dtype=np.float32)), "expected a 1-D float64 array"),
+        (dict(log_gain_per_frame=-np.ones(6)), "covers 6 bins: expected 1 to n_fft // 2 \\+ 1 = 5"),
+        (dict(out=np.zeros(4, dtype=complex)), "out has dtype complex128 and shape \\(4,\\)"),
+        (dict(table=np.ones(8)), "table has shape \\(8,\\): expected unit_delay_phasors"),
+    ],
+)
+def test_comb_bank_parameter_errors(kwargs, match):
+    call = dict(signs=[1.0, -1.0], log_gain_per_frame=-np.ones(5), table=network.unit_delay_phasors(8))
+    call.update(kwargs)
+    with pytest.raises(ParameterError, match=match):
+        network.comb_bank_spectrum([3, 5], **call)
+    with pytest.raises(ParameterError, match="gain = 1.0"):
+        network.allpass_chain_spectrum([3], gain=1.0, table=network.unit_delay_phasors(8))

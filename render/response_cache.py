@@ -1,0 +1,380 @@
+"""A persistent, per-user cache of synthesised room responses (I/O around :mod:`render.synthesis`).
+
+Synthesising and calibrating a room takes about a second at 48 kHz; a second
+``render run`` of the same rooms reads each response from this cache instead.
+:func:`cached_synthesize` is a drop-in for :func:`render.synthesis.synthesize`
+(with its default settings) that looks in the in-process cache first, then on
+disk, and synthesises only on a miss (storing the result for next time).
+
+Where: :func:`cache_dir`: ``$RENDER_CACHE_DIR`` if set (``off`` or an empty
+value turns the cache off), else ``$XDG_CACHE_HOME/render/responses``, else
+``~/.cache/render/responses``.
+
+What: one entry per response, named by a sha256 key of everything that shapes
+it (:func:`cache_key`: the engine version, the room's fingerprint, the rate,
+the channel count, the tail floor, the other synthesis settings, and the
+numpy and scipy major.minor versions, whose arithmetic the samples depend on).
+An entry is two files: ``<key>.npy``, the float64 response, and ``<key>.json``,
+the :class:`~render.synthesis.Response`'s other fields plus the sha256 of the
+samples.
+
+Safety:
+
+* each file is written under a unique temporary name in the cache folder
+  (host, process and a random part; created with ``O_EXCL``) and renamed over
+  the entry in one step (``os.replace``), so a reader sees an old file or a
+  new one, never half of one, and any number of processes or machines may
+  write the same entry at once (on shared storage too);
+* a read takes the metadata, then the samples, each file read once, and uses
+  them only if they agree (key, shape, dtype, sha256 of the samples, room
+  fingerprint, frame count); anything else (a truncated, damaged or
+  mismatching entry, or two writers' files crossed) is a miss, is synthesised
+  again and written over;
+* the cache never raises: an unreadable entry is a miss, an unwritable folder
+  only means nothing is stored, and errors in the arguments are the
+  :class:`~render.errors.ParameterError` of :func:`render.synthesis.synthesize`.
+
+Machines whose arithmetic differs in the last bits (another processor's
+vector code in numpy or the BLAS) may share one folder: whichever entry was
+written last is served to all of them, which keeps a farm's outputs alike.
+
+Nothing is ever deleted: entries are about the size of the response (1-10 MB
+at 48 kHz), the folder may be removed at any time, and so may a ``.part`` file
+a killed writer left behind.
+
+Example (a temporary cache folder):
+
+>>> import os, shutil, tempfile
+>>> from render.room import Room
+>>> saved = os.environ.get("RENDER_CACHE_DIR")
+>>> os.environ["RENDER_CACHE_DIR"] = folder = tempfile.mkdtemp()
+>>> room = Room(decay_s=0.3, size_m=(4.0, 3.0, 2.5))
+>>> r = cached_synthesize(room, rate_hz=16000, channels=1, tail_floor_db=-80.0)
+>>> sorted(p.suffix for p in cache_dir().iterdir())
+['.json', '.npy']
+>>> shutil.rmtree(folder)
+>>> _ = os.environ.pop("RENDER_CACHE_DIR") if saved is None else os.environ.update(RENDER_CACHE_DIR=saved)
+"""
+
+from __future__ import annotations
+
+import hashlib
+import inspect
+import json
+import os
+import secrets
+import socket
+from pathlib import Path
+
+import numpy as np
+import scipy
+
+from . import synthesis
+
+__all__ = ["cache_dir", "cache_key", "entry_paths", "cached_synthesize", "ENV_VAR", "FORMAT_VERSION"]
+
+#: Environment variable naming the cache folder (``off`` or empty: no cache).
+ENV_VAR = "RENDER_CACHE_DIR"
+#: Layout of an entry; part of every key.
+FORMAT_VERSION = 1
+
+#: synthesize()'s settings that cached_synthesize leaves at their defaults (part of every key).
+_DEFAULTS = {
+    name: p.default
+    for name, p in inspect.signature(synthesis.synthesize).parameters.items()
+    if name in ("calibrate", "tolerance_pct", "max_iterations", "alias_db")
+}
+
+
+def _major_minor(version):
+    return ".".join(str(version).split(".")[:2])
+
+
+def cache_dir():
+    """The folder of the response cache, or None when the cache is off.
+
+    ``$RENDER_CACHE_DIR`` when set (``off`` in any case, or an empty value:
+    None); else ``$XDG_CACHE_HOME/render/responses`` when that is an absolute
+    path (the XDG Base Directory Specification ignores relative ones); else
+    ``~/.cache/render/responses``; None when there is no home folder either.
+    The folder need not exist (it is made on the first store).
+
+    Returns
+    -------
+    pathlib.Path or None
+    """
+    value = os.environ.get(ENV_VAR)
+    if value is not None:
+        if value.strip().lower() in ("", "off"):
+            return None
+        return Path(value).expanduser()
+    xdg = os.environ.get("XDG_CACHE_HOME", "")
+    if xdg and os.path.isabs(xdg):
+        return Path(xdg) / "render" / "responses"
+    try:
+        home = Path.home()
+    except (RuntimeError, KeyError):  # no HOME and no password entry
+        return None
+    return home / ".cache" / "render" / "responses"
+
+
+def _identity(room, rate_hz, channels, tail_floor_db):
+    """Everything that shapes the response, as JSON-ready values (ParameterError for bad arguments)."""
+    key = synthesis._validated_key(room, rate_hz=rate_hz, channels=channels, tail_floor_db=tail_floor_db, **_DEFAULTS)
+    ident = {
+        "format": FORMAT_VERSION,
+        "synthesis": list(key),  # engine version, room fingerprint, rate, channels, floor, settings
+        "numpy": _major_minor(np.__version__),
+        "scipy": _major_minor(scipy.__version__),
+    }
+    return key, ident
+
+
+def _digest(ident):
+    return hashlib.sha256(json.dumps(ident, sort_keys=True).encode("utf-8")).hexdigest()
+
+
+def cache_key(room, *, rate_hz, channels, tail_floor_db):
+    """The sha256 (hex) that names a response's cache entry.
+
+    Parameters
+    ----------
+    room : Room
+    rate_hz : float
+        Sample rate in Hz, 8000 to 384000.
+    channels : int
+        1 to 16.
+    tail_floor_db : float
+        -150 to -20 dB.
+
+    Returns
+    -------
+    str
+        64 hex digits.
+
+    Raises
+    ------
+    ParameterError
+        As :func:`render.synthesis.synthesize` does for the same arguments.
+    """
+    return _digest(_identity(room, rate_hz, channels, tail_floor_db)[1])
+
+
+def entry_paths(key, folder=None):
+    """The two files of an entry: ``(<key>.npy, <key>.json)`` in ``folder`` (default :func:`cache_dir`).
+
+    Returns
+    -------
+    (pathlib.Path, pathlib.Path) or None
+        None when the cache is off.
+    """
+    folder = cache_dir() if folder is None else Path(folder)
+    if folder is None:
+        return None
+    return folder / f"{key}.npy", folder / f"{key}.json"
+
+
+def cached_synthesize(room, *, rate_hz, channels, tail_floor_db):
+    """:func:`render.synthesis.synthesize` through the in-process and the on-disk cache.
+
+    The in-process cache first (the same object as a second ``synthesize``
+    call returns); then the entry in :func:`cache_dir`, read once and checked
+    (see the module notes); then synthesis, whose response is stored.  A
+    response found on disk joins the in-process cache, so a later
+    ``synthesize`` of the same room in this process returns it too.  A
+    response already in the in-process cache but not on disk is stored.
+
+    Parameters
+    ----------
+    room : Room
+    rate_hz : float
+        Sample rate in Hz, 8000 to 384000.
+    channels : int
+        1 to 16.
+    tail_floor_db : float
+        -150 to -20 dB.
+
+    Returns
+    -------
+    Response
+        Equal to what ``synthesize(room, rate_hz=rate_hz, channels=channels,
+        tail_floor_db=tail_floor_db)`` returns: the same fields, and the same
+        samples bit for bit (float64, C-contiguous, read-only).
+
+    Raises
+    ------
+    ParameterError
+        As :func:`render.synthesis.synthesize`; never because of the cache.
+    """
+    key, ident = _identity(room, rate_hz, channels, tail_floor_db)
+    folder = cache_dir()
+    hit = synthesis._cache_get(key)
+    if folder is None:
+        return hit if hit is not None else _synthesize(room, rate_hz, channels, tail_floor_db)
+    name = _digest(ident)
+    if hit is not None:
+        if not _exists(folder / f"{name}.json"):
+            _store(folder, name, ident, hit)
+        return hit
+    response = _load(folder, name, ident, key)
+    if response is not None:
+        synthesis._cache_put(key, response)
+        return response
+    response = _synthesize(room, rate_hz, channels, tail_floor_db)
+    _store(folder, name, ident, response)
+    return response
+
+
+def _synthesize(room, rate_hz, channels, tail_floor_db):
+    return synthesis.synthesize(room, rate_hz=rate_hz, channels=channels, tail_floor_db=tail_floor_db)
+
+
+def _exists(path):
+    try:
+        return path.is_file()
+    except OSError:
+        return False
+
+
+# ----------------------------------------------------------------------------- reading
+
+
+def _floats(values):
+    return tuple(float(v) for v in values)
+
+
+def _response_fields(response):
+    """The Response's fields other than the samples, JSON-ready (floats round-trip exactly)."""
+    return {
+        "rate_hz": response.rate_hz,
+        "tail_frames": response.tail_frames,
+        "bands_hz": list(response.bands_hz),
+        "target_s": list(response.target_s),
+        "measured_s": list(response.measured_s),
+        "error_pct": list(response.error_pct),
+        "channel_error_pct": [list(row) for row in response.channel_error_pct],
+        "iterations": response.iterations,
+        "design_s": list(response.design_s),
+        "reverberant_ratio_db": response.reverberant_ratio_db,
+        "room_fingerprint": response.room_fingerprint,
+    }
+
+
+def _read_samples(path, shape, sha256):
+    """The float64 samples of a ``.npy`` file read once, or None unless shape and sha256 agree."""
+    with open(path, "rb") as f:
+        version = np.lib.format.read_magic(f)
+        if version == (1, 0):
+            header = np.lib.format.read_array_header_1_0(f)
+        elif version == (2, 0):
+            header = np.lib.format.read_array_header_2_0(f)
+        else:
+            return None
+        file_shape, fortran_order, dtype = header
+        if tuple(file_shape) != shape or fortran_order or dtype != np.dtype(np.float64):
+            return None
+        if os.fstat(f.fileno()).st_size != f.tell() + 8 * shape[0] * shape[1]:
+            return None  # truncated, or longer than its header says
+        ir = np.empty(shape, dtype=np.float64)
+        view = memoryview(ir).cast("B")
+        done = 0
+        while done < view.nbytes:
+            count = f.readinto(view[done:])
+            if not count:
+                return None  # truncated
+            done += count
+        if f.read(1):
+            return None  # longer than its header says
+    if hashlib.sha256(view).hexdigest() != sha256:
+        return None
+    ir.setflags(write=False)
+    return ir
+
+
+def _load(folder, name, ident, key):
+    """The Response of an entry, or None for a missing, unreadable or inconsistent one (never raises)."""
+    npy, meta_path = entry_paths(name, folder)
+    try:
+        with open(meta_path, "rb") as f:
+            meta = json.loads(f.read().decode("utf-8"))
+        if meta.get("key") != name or meta.get("identity") != json.loads(json.dumps(ident)):
+            return None
+        fields = meta["response"]
+        shape = tuple(int(v) for v in meta["samples"]["shape"])
+        fingerprint, rate_hz, channels = key[1], key[2], key[3]
+        if (
+            len(shape) != 2
+            or shape[1] != channels
+            or shape[0] < 1
+            or int(fields["tail_frames"]) != shape[0] - 1
+            or fields["room_fingerprint"] != fingerprint
+            or float(fields["rate_hz"]) != rate_hz
+            or len(fields["channel_error_pct"]) != channels
+        ):
+            return None
+        ir = _read_samples(npy, shape, str(meta["samples"]["sha256"]))
+        if ir is None:
+            return None
+        return synthesis.Response(
+            ir=ir,
+            rate_hz=float(fields["rate_hz"]),
+            tail_frames=int(fields["tail_frames"]),
+            bands_hz=_floats(fields["bands_hz"]),
+            target_s=_floats(fields["target_s"]),
+            measured_s=_floats(fields["measured_s"]),
+            error_pct=_floats(fields["error_pct"]),
+            channel_error_pct=tuple(_floats(row) for row in fields["channel_error_pct"]),
+            iterations=int(fields["iterations"]),
+            design_s=_floats(fields["design_s"]),
+            reverberant_ratio_db=float(fields["reverberant_ratio_db"]),
+            room_fingerprint=str(fields["room_fingerprint"]),
+        )
+    except Exception:  # noqa: BLE001 - any damage to an entry is a miss, by design
+        return None
+
+
+# ----------------------------------------------------------------------------- writing
+
+
+def _write_atomic(path, write):
+    """Write a file under a unique temporary name beside ``path``, then rename it over ``path``.
+
+    The temporary name holds the host, the process and a random part, and is
+    created with ``O_EXCL`` (no two writers share one, on shared storage
+    too); permissions follow the umask.  No fsync: a cache entry lost or torn
+    by a crash fails its checksum and is written again.
+    """
+    host = "".join(c if c.isalnum() else "-" for c in socket.gethostname())[:32] or "host"
+    tmp = path.with_name(f".{path.name}.{host}.{os.getpid()}.{secrets.token_hex(6)}.part")
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0), 0o666)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            write(f)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def _store(folder, name, ident, response):
+    """Write an entry (samples first, then the metadata that vouches for them); False if it cannot be."""
+    ir = np.ascontiguousarray(response.ir, dtype=np.float64)
+    checksum = hashlib.sha256(memoryview(ir).cast("B")).hexdigest()
+    meta = {
+        "key": name,
+        "identity": ident,
+        "samples": {"shape": list(ir.shape), "dtype": "float64", "sha256": checksum},
+        "response": _response_fields(response),
+    }
+    text = json.dumps(meta, indent=1) + "\n"  # NaN (an unmeasurable band) is written as NaN
+    npy, meta_path = entry_paths(name, folder)
+    try:
+        Path(folder).mkdir(parents=True, exist_ok=True)
+        _write_atomic(npy, lambda f: np.save(f, ir, allow_pickle=False))
+        _write_atomic(meta_path, lambda f: f.write(text.encode("utf-8")))
+    except OSError:
+        return False
+    return True
