@@ -22,7 +22,8 @@ from . import audio_io
 from .errors import AudioInputError, JobError, OutputError
 from .job import Job
 from .room import Room
-from .synthesis import ENGINE_VERSION, synthesize
+from .response_cache import cached_synthesize
+from .synthesis import ENGINE_VERSION
 
 __all__ = ["Task", "Plan", "plan_job", "MAX_SOURCES", "ROOMS_DIR", "MANIFEST_NAME", "response_files"]
 
@@ -192,7 +193,8 @@ def plan_job(job: Job, *, synthesize_rooms=True):
         ident = (g.room, room.fingerprint(), float(info.rate_hz), channels_out)
         if ident not in used_rooms:
             if synthesize_rooms:
-                response = synthesize(room, rate_hz=float(info.rate_hz), channels=channels_out, tail_floor_db=job.tail_floor_db)
+                response = cached_synthesize(room, rate_hz=float(info.rate_hz), channels=channels_out,
+                                             tail_floor_db=job.tail_floor_db)
                 tail_frames = response.tail_frames
             else:
                 tail_frames = int(math.ceil(room.decay_max_s * (-job.tail_floor_db) / 60.0 * info.rate_hz))

@@ -39,7 +39,7 @@ import soundfile as sf
 
 from . import __version__, audio_io, convolve, dither, limiter, loudness, riff, truepeak
 from .errors import AudioInputError, OutputError, RenderError
-from .synthesis import synthesize
+from .response_cache import cached_synthesize
 from .units import db_to_gain, gain_to_db
 
 __all__ = ["render_task", "measure_task", "kernel_for", "CUT_FADE_S", "TEMP_DIR", "temp_path_for"]
@@ -72,7 +72,7 @@ def kernel_for(task, output_dir=None):
 
     The response comes from the batch's float64 store in ``output_dir`` when
     it is there (memory-mapped: the same bits as a synthesis), else from
-    :func:`render.synthesis.synthesize`.
+    :func:`render.response_cache.cached_synthesize`.
     """
     key = (task.room.fingerprint(), float(task.info.rate_hz), task.channels_out, task.tail_floor_db, task.wet_db)
     kernel = _KERNELS.get(key)
@@ -86,8 +86,8 @@ def kernel_for(task, output_dir=None):
             except (OSError, ValueError):
                 ir = None
         if ir is None or ir.ndim != 2 or ir.shape[1] != task.channels_out:
-            ir = synthesize(task.room, rate_hz=float(task.info.rate_hz), channels=task.channels_out,
-                            tail_floor_db=task.tail_floor_db).ir
+            ir = cached_synthesize(task.room, rate_hz=float(task.info.rate_hz), channels=task.channels_out,
+                                   tail_floor_db=task.tail_floor_db).ir
         if ir.shape[0] - 1 != task.tail_frames:
             raise RenderError(
                 f"{task.key}: the room's response has {ir.shape[0] - 1} tail frames, the plan expected "

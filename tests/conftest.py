@@ -7,6 +7,21 @@ import pytest
 import soundfile as sf
 
 
+@pytest.fixture(scope="session", autouse=True)
+def _response_cache_of_the_session(tmp_path_factory):
+    """Every test (and every process a test starts) uses one response cache of the session's own,
+    never the user's ``~/.cache``; tests of the cache itself set their own folder."""
+    import os
+
+    saved = os.environ.get("RENDER_CACHE_DIR")
+    os.environ["RENDER_CACHE_DIR"] = str(tmp_path_factory.mktemp("response-cache"))
+    yield
+    if saved is None:
+        os.environ.pop("RENDER_CACHE_DIR", None)
+    else:
+        os.environ["RENDER_CACHE_DIR"] = saved
+
+
 @pytest.fixture
 def rng():
     return np.random.default_rng(20261201)

@@ -258,3 +258,25 @@ def test_text_tags_are_carried_over(tmp_path, make_job, rng, ext, fmt):
         with sf.SoundFile(str(tmp_path / "out" / f"t.{stem}.{ext}")) as f:
             tags = f.copy_metadata()
         assert (tags.get("title"), tags.get("artist"), tags.get("comment")) == ("Scene 12, line 3", "Mara", "ADR pass 2")
+
+
+@pytest.mark.parametrize("cache", ["on", "off"])
+def test_a_second_run_reads_the_room_from_the_response_cache(tmp_path, make_job, rng, monkeypatch, cache):
+    # A second planning of the same job, in a process that has forgotten every response, reads the room
+    # from the on-disk cache instead of synthesising it, and renders the same bytes (our design).
+    from render import synthesis
+
+    monkeypatch.setenv("RENDER_CACHE_DIR", str(tmp_path / "cache") if cache == "on" else "off")
+    write_audio(tmp_path / "in" / "a.wav", speechlike(rng, 4000, 1), 48000, "PCM_24")
+    job = make_job(job_text(["in/*.wav"]))
+    synthesis.clear_cache()
+    assert render(job) == EXIT_OK
+    first = json.loads((tmp_path / "out" / "manifest.json").read_text())["sources"][0]["stems"]
+    synthesis.clear_cache()
+    calls = []
+    real = synthesis._synthesize
+    monkeypatch.setattr(synthesis, "_synthesize", lambda *a, **k: (calls.append(1), real(*a, **k))[1])
+    assert render(job) == EXIT_OK  # without --resume every source is rendered again
+    second = json.loads((tmp_path / "out" / "manifest.json").read_text())["sources"][0]["stems"]
+    assert calls == ([] if cache == "on" else [1])
+    assert {s: v["sha256"] for s, v in first.items()} == {s: v["sha256"] for s, v in second.items()}
