@@ -13,7 +13,11 @@ compare like with like on whatever machine runs them:
    loudness, true peak, limiter, TPDF dither, three PCM_24 stems), in a fresh
    process: interpreter start, imports, planning, room synthesis, both passes,
    hashing and the manifest are all included.  The render alone
-   (:func:`render.batch.run_plan`, after planning and synthesis) is also given.
+   (:func:`render.batch.run_plan`, after planning and synthesis) is also given,
+   and so is the same run with the room's response read from the response
+   cache (:mod:`render.response_cache`), as every run after the first finds it.
+   Every child process gets a response cache of the bench's own
+   (``RENDER_CACHE_DIR`` in the temporary folder), never the user's.
 3. **Script baseline**: what a capable user writes with general libraries:
    ``soundfile.read`` of the whole file, ``scipy.signal.fftconvolve`` with the
    renderer's own response (read back from ``out/rooms/*.ir.wav``), pyloudnorm
@@ -201,8 +205,9 @@ def _room():
 # -- child processes -------------------------------------------------------------------------
 
 
-def _env():
+def _env(cache_dir):
     env = dict(os.environ)
+    env["RENDER_CACHE_DIR"] = str(cache_dir)  # never the user's own response cache
     for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
         env[name] = "1"  # one worker is one core
     root = str(Path(__file__).resolve().parents[1])
@@ -210,10 +215,14 @@ def _env():
     return env
 
 
-def _spawn(*args):
-    """Run this module's child with ``args``; return (wall seconds, the JSON it printed last)."""
+def _spawn(*args, cache_dir):
+    """Run this module's child with ``args`` and a response cache in ``cache_dir``.
+
+    Returns (wall seconds, the JSON it printed last).
+    """
     t0 = time.perf_counter()
-    proc = subprocess.run([sys.executable, "-c", _CHILD, *map(str, args)], capture_output=True, text=True, env=_env())
+    proc = subprocess.run([sys.executable, "-c", _CHILD, *map(str, args)], capture_output=True, text=True,
+                          env=_env(cache_dir))
     wall = time.perf_counter() - t0
     if proc.returncode != 0:
         tail = (proc.stderr.strip() or proc.stdout.strip())[-600:]
@@ -606,6 +615,16 @@ class _Run:
         self.job = self.src = self.frames = None
         self.entry = self.ir_path = self.frames_out = self.ir_channels = self.e2e_rss = None
 
+    @property
+    def warm_cache(self):
+        """The response cache the first end-to-end run filled (shared by the later runs)."""
+        return self.root / "cache-0"
+
+    def cold_cache(self):
+        """A response cache folder no run has used yet (the first one becomes :attr:`warm_cache`)."""
+        self._caches = getattr(self, "_caches", 0) + 1
+        return self.root / f"cache-{self._caches - 1}"
+
     def timed(self, label, values):
         """Note the spread of repeated timings under ``label``; return their median."""
         self.spreads[label] = repeat_spread(values)
@@ -652,9 +671,14 @@ def _section_end_to_end(run):
     out = run.job.parent / "out"
     runs = []
     for i in range(run.repeats):
-        run.log(f"end to end {i + 1}/{run.repeats}")
+        run.log(f"end to end {i + 1}/{run.repeats}, room synthesised (empty response cache)")
         shutil.rmtree(out, ignore_errors=True)
-        runs.append(_spawn("run", run.job, 1))
+        runs.append(_spawn("run", run.job, 1, cache_dir=run.cold_cache()))
+    warm = []
+    for i in range(run.repeats):
+        run.log(f"end to end {i + 1}/{run.repeats}, room from the response cache")
+        shutil.rmtree(out, ignore_errors=True)
+        warm.append(_spawn("run", run.job, 1, cache_dir=run.warm_cache))
     manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
     run.entry = manifest["sources"][0]
     run.ir_path = run.root / "hall.ir.wav"
@@ -671,11 +695,15 @@ def _section_end_to_end(run):
         "render_includes": "run_plan after planning: both passes, metering, limiter, dither, writing, the room "
         "file, hashes, manifest (no synthesis)",
         "wall_s": wall_s, "render_s": render_s, "in_process_s": [f["main_s"] for _, f in runs],
+        "warm_includes": "the same, with the room's response read from the response cache (filled by the "
+        "first run above) instead of synthesised",
+        "warm_wall_s": [w for w, _ in warm], "warm_render_s": [f["render_s"] for _, f in warm],
         "gain_db": loud["gain_db"], "limiter_reduction_db": loud["limiter_reduction_db"],
         "before": loud["before"], "after": loud["after"], "met": loud["met"],
         "frames": run.frames, "frames_out": run.frames_out,
     }
     wall, render = run.timed("end to end", wall_s), run.timed("render alone", render_s)
+    warm_wall = run.timed("end to end, cached room", [w for w, _ in warm])
     return {
         "wall_s": wall,
         "x_realtime": run.seconds / wall,
@@ -683,6 +711,9 @@ def _section_end_to_end(run):
         "render_x_realtime": run.seconds / render,
         "plan_s": _median([f["main_s"] - f["render_s"] for _, f in runs]),
         "startup_s": _median([w - f["main_s"] for w, f in runs]),
+        "warm_wall_s": warm_wall,
+        "warm_x_realtime": run.seconds / warm_wall,
+        "warm_plan_s": _median([f["main_s"] - f["render_s"] for _, f in warm]),
     }
 
 
@@ -730,13 +761,13 @@ def _section_script(run):
     for i in range(run.repeats):
         run.log(f"script baseline {i + 1}/{run.repeats}")
         wall, facts = _spawn("script", run.src, run.ir_path, out, dump if i == 0 else "-", run.entry["wet_db"],
-                             run.entry["dry_db"], -23.0, -1.0)
+                             run.entry["dry_db"], -23.0, -1.0, cache_dir=run.warm_cache)
         script.append((wall - facts["dump_s"], facts))
     shutil.rmtree(out)
     run.log("our DOUBLE render at the same gain, for the difference")
     loud = run.entry["loudness"]
     gain_db = float(loud["gain_db"])
-    _, cmp = _spawn("compare", run.job, gain_db, "compare/speech.mix.wav")
+    _, cmp = _spawn("compare", run.job, gain_db, "compare/speech.mix.wav", cache_dir=run.warm_cache)
     ours, _ = sf.read(cmp["path"], dtype="float64", always_2d=True)
     theirs = np.load(dump) * db_to_gain(gain_db)
     if ours.shape != theirs.shape:
@@ -811,7 +842,7 @@ def _section_memory(run):
         run.log(f"memory: writing {size:g} min of stereo material")
         _write_speechlike(folder / "in" / "speech.wav", seconds=size * 60.0, channels=2, seed=2)
         run.log(f"memory: render run of {size:g} min")
-        _, facts = _spawn("run", job, 1)
+        _, facts = _spawn("run", job, 1, cache_dir=run.cold_cache())  # synthesis included: the peak
         runs[f"{size:g}"] = [(facts["rss_kib"], facts["plan_rss_kib"], facts["ru_maxrss_kib"])]
         shutil.rmtree(folder)
     run.details["memory"] = {
@@ -846,7 +877,7 @@ def _section_scaling(run):
         _write_speechlike(farm / "in" / f"take{i:02d}.wav", seconds=file_s, channels=1 + i % 2, seed=10 + i)
     audio_s = n_files * file_s
     run.log(f"scaling: --jobs 1 and --jobs {run.n_jobs} on {n_files} files, {run.repeats} times each")
-    _, runs = _spawn("scale", job, run.n_jobs, run.repeats)
+    _, runs = _spawn("scale", job, run.n_jobs, run.repeats, cache_dir=run.warm_cache)
     run.details["scaling"] = {
         "includes": "run_plan (what render run does after planning: both passes of every file, the room file, "
         "the manifest) with --jobs 1 and --jobs N in turn, in one process that planned the job once; a pool "
@@ -875,10 +906,14 @@ def _ratios(f, *, n_jobs):
     ratios = {
         "end_to_end_over_limit": _ratio("end_to_end_over_limit", e2e["wall_s"] / lim["total_s"]),
         "render_over_limit": info(e2e["render_s"] / lim["total_s"], "render alone (no synthesis) / limit"),
+        "end_to_end_warm_over_limit": info(e2e["warm_wall_s"] / lim["total_s"],
+                                           "end to end with the room from the response cache / limit"),
         "script_over_ours": _ratio("script_over_ours", scr["wall_s"] / e2e["wall_s"]),
+        "script_over_ours_warm": info(scr["wall_s"] / e2e["warm_wall_s"], "script / ours (cached room)"),
         "script_over_render": info(scr["wall_s"] / e2e["render_s"], "script / our render alone"),
         "max_diff_dbfs": _ratio("max_diff_dbfs", scr["max_diff_dbfs"]),
         "time_domain_over_ours": _ratio("time_domain_over_ours", td["scaled_s"] / e2e["wall_s"]),
+        "time_domain_over_ours_warm": info(td["scaled_s"] / e2e["warm_wall_s"], "time-domain / ours (cached room)"),
         "time_domain_over_render": info(td["scaled_s"] / e2e["render_s"], "time-domain / our render alone"),
         "rss_long_over_short": _ratio("rss_long_over_short", mem["long_rss_mb"] / mem["short_rss_mb"]),
         "long_rss_mb": _ratio("long_rss_mb", mem["long_rss_mb"]),
@@ -943,6 +978,7 @@ def format_bench(results):
     row("   render alone (after planning and synthesis)", e2e["render_s"], e2e["render_x_realtime"])
     row("   job and planning with room synthesis", e2e["plan_s"])
     row("   interpreter start and imports", e2e["startup_s"])
+    row("   end to end, room from the response cache", e2e["warm_wall_s"], e2e["warm_x_realtime"])
     row("3. script baseline (soundfile, fftconvolve, pyloudnorm)", scr["wall_s"], scr["x_realtime"])
     row(f"4. time-domain baseline (lfilter, {td['excerpt_s']:g} s excerpt scaled)", td["scaled_s"],
         td["x_realtime"])
@@ -956,10 +992,13 @@ def format_bench(results):
     labels = [
         ("end_to_end_over_limit", "end to end / limit", "{:.2f}"),
         ("render_over_limit", "render alone / limit", "{:.2f}"),
+        ("end_to_end_warm_over_limit", "end to end, cached room / limit", "{:.2f}"),
         ("script_over_ours", "script / ours (end to end)", "{:.2f}"),
+        ("script_over_ours_warm", "script / ours (end to end, cached room)", "{:.2f}"),
         ("script_over_render", "script / ours (render alone)", "{:.2f}"),
         ("max_diff_dbfs", "max |script mix - ours| before dither, dBFS", "{:.1f}"),
         ("time_domain_over_ours", "time-domain / ours (end to end)", "{:.1f}"),
+        ("time_domain_over_ours_warm", "time-domain / ours (end to end, cached room)", "{:.1f}"),
         ("time_domain_over_render", "time-domain / ours (render alone)", "{:.1f}"),
         ("rss_long_over_short", f"RSS {mem['long_minutes']:g} min / {mem['short_minutes']:g} min", "{:.3f}"),
         ("long_rss_mb", f"RSS {mem['long_minutes']:g} min, MB", "{:.0f}"),

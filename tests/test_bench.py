@@ -11,14 +11,16 @@ from render.errors import OutputError, ParameterError
 #: Every figure the JSON must hold, by section.
 FIGURES = {
     "limit": ("fft_s", "io_s", "total_s", "x_realtime"),
-    "end_to_end": ("wall_s", "x_realtime", "render_s", "render_x_realtime", "plan_s", "startup_s"),
+    "end_to_end": ("wall_s", "x_realtime", "render_s", "render_x_realtime", "plan_s", "startup_s", "warm_wall_s",
+                   "warm_x_realtime", "warm_plan_s"),
     "script": ("wall_s", "x_realtime", "max_abs_diff", "max_diff_dbfs", "loudness_diff_lu"),
     "time_domain": ("excerpt_s", "excerpt_wall_s", "scaled_s", "x_realtime"),
     "memory": ("short_minutes", "long_minutes", "short_rss_mb", "long_rss_mb", "short_plan_rss_mb", "long_plan_rss_mb"),
     "scaling": ("files", "audio_s", "jobs", "jobs_1_s", "jobs_n_s", "jobs_1_x_realtime", "jobs_n_x_realtime"),
 }
-RATIOS = ("end_to_end_over_limit", "render_over_limit", "script_over_ours", "script_over_render", "max_diff_dbfs",
-          "time_domain_over_ours", "time_domain_over_render", "rss_long_over_short", "long_rss_mb",
+RATIOS = ("end_to_end_over_limit", "render_over_limit", "end_to_end_warm_over_limit", "script_over_ours",
+          "script_over_ours_warm", "script_over_render", "max_diff_dbfs", "time_domain_over_ours",
+          "time_domain_over_ours_warm", "time_domain_over_render", "rss_long_over_short", "long_rss_mb",
           "jobs_n_over_jobs_1")
 #: Figures that are levels in dB or LU and may be negative or zero (every other figure is a positive quantity).
 LEVELS = ("_db", "_dbfs", "_dbtp", "_lufs", "_lu")
