@@ -289,14 +289,19 @@ def test_heavily_limited_mix_still_reads_the_target(tmp_path):
     assert abs(lufs_of(read_stem(job, e, "mix")) + 23.0) < 0.1  # pyloudnorm (BS.1770-4), EBU R128 target
 
 
+@pytest.mark.parametrize("held", [True, False], ids=["mix-in-memory", "mix-streamed"])
 @pytest.mark.parametrize("crest_db", [25.0, 28.0])
-def test_makeup_probes_find_the_gain_before_anything_is_written(tmp_path, crest_db):
+def test_makeup_probes_find_the_gain_before_anything_is_written(tmp_path, monkeypatch, crest_db, held):
     # The make-up gain is found by probes that write nothing, so the stems are written once; the
     # written mix then reads the target (EBU R128, -23 LUFS) by pyloudnorm (ITU-R BS.1770-4) within
     # the renderer's own tolerance, 0.05 LU (our choice).
     from render.delivery import decide_gain
     from render.plan import plan_job
+    from render import renderer
     from render.renderer import MAKEUP_PROBES, measure_task, render_task
+
+    if not held:
+        monkeypatch.setattr(renderer, "PROBE_IN_MEMORY_BYTES", 0)
 
     write_source(tmp_path / "in" / "take.wav", speech_with_clicks(np.random.default_rng(103), 6.0, 2,
                                                                   crest_db=crest_db))
