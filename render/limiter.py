@@ -56,6 +56,31 @@ per frame.
 gains that are final, :func:`limiter_flush` the rest, so the gains add up to
 exactly one per input frame, and any block split gives bit-identical gains.
 
+**Speed.**  Limited frames are usually few, so each stage works only where
+it can change something, and gives there the values of the full computation:
+
+* envelope: a window can only read above ``t`` if one of its samples is above
+  ``t`` / (L1 norm of the taps) (the bound of :mod:`render.truepeak`); the
+  windows that hold such a sample come in runs, which are copied into one
+  short block and interpolated there, with the taps summed in the order of
+  :func:`render.truepeak.brute_force_true_peak`;
+* look-ahead minimum: taken only near frames with ``g_req < 1`` (a minimum
+  is exact);
+* release: the running maximum only changes at frames with ``m < 1``;
+* attack: in a *pure release* (for all j in ``n - K .. n``, ``r[j]`` on the
+  release curve ``1 - d[j]``, ``d[j] = d[n] a^(j - n)``, under one running
+  maximum) the sum is ``1 - s[n] = d[n] sum_k w[k] a^-k``; it is summed term
+  by term, k = 0 .. K, only within K frames after a frame where ``m`` falls
+  below the release curve or the running maximum rises.  The two agree to
+  rounding: ``d`` comes from ``exp`` of an argument indexed by the absolute
+  frame number, which carries a relative rounding of about
+  ``2e-16 n / (release_s rate_hz)`` in either form (the gains of a term-by-term
+  sum and of this one were seen to differ by up to 6e-14 after a minute at
+  50 ms).
+
+Each choice depends on the signal alone, never on the block split, so the
+gains stay bit-identical for any split.
+
 The limiter reads with the same 4x (2x) interpolator as the BS.1770 meter, so
 the output's BS.1770 true peak stays at or under the ceiling; the reading can
 miss up to 0.688 dB of a band-limited peak for content near Nyquist at 4x
@@ -71,6 +96,7 @@ miss up to 0.688 dB of a band-limited peak for content near Nyquist at 4x
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 
@@ -117,8 +143,8 @@ MIN_ATTACK_FRAMES = 16
 #: Relative slack on the skip bound, as in render.truepeak: rounding in a 12-term sum cannot
 #: lift a skipped window above the floor.
 _BOUND_SLACK = 1.0 + 1e-12
-#: Frames per internal piece: results do not depend on it (every stage is elementwise in the
-#: absolute frame number), it only bounds the size of temporaries.
+#: Frames per internal piece: results do not depend on it (each frame's arithmetic depends on
+#: the signal and its absolute frame number only), it only bounds the size of temporaries.
 _PIECE = 1 << 16
 
 
@@ -138,21 +164,86 @@ def _check_block(block, channels, name):
         raise ParameterError(f"{name} has 0 channels: expected at least 1")
     if not np.issubdtype(block.dtype, np.floating):
         raise ParameterError(f"{name}.dtype = {block.dtype}: expected floating-point samples (full scale 1.0)")
-    if block.size and not np.isfinite(block).all():
+    # A finite sum proves every sample finite (a NaN or an infinity would make it NaN or infinite);
+    # only a sum that overflows needs the sample-by-sample check.
+    if block.size and not math.isfinite(float(np.sum(block))) and not np.isfinite(block).all():
         raise ParameterError(f"{name} contains NaN or infinite samples: expected finite values")
     return np.asarray(block, dtype=np.float64)
 
 
-def _interpolate(column, phases, starts, out):
-    """``out = max(out, |interpolated values|)`` of the windows ``column[i : i + 12]``, i in ``starts``.
+def _runs(positions, before, after, length):
+    """Merged ranges ``[start, end)`` covering ``p - before .. p + after`` for each p, within ``[0, length)``.
 
-    ``starts`` is a slice (every window) or an index array (some windows).
+    ``positions`` is sorted and inside ``[0, length + before)``, so no range is empty.
     """
-    if isinstance(starts, slice):
-        count = starts.stop
-        windows = [column[_TAPS - 1 - k: _TAPS - 1 - k + count] for k in range(_TAPS)]
-    else:
-        windows = [column[starts + (_TAPS - 1 - k)] for k in range(_TAPS)]
+    starts = np.maximum(positions - before, 0)
+    ends = np.minimum(positions + (after + 1), length)  # sorted as well
+    return _runs_merge(starts, ends) if positions.size > 1 else (starts, ends)
+
+
+def _runs_merge(starts, ends):
+    """Merge ranges ``[start, end)`` (starts and ends both non-decreasing) that overlap or touch."""
+    new = np.flatnonzero(starts[1:] > ends[:-1]) + 1
+    return starts[np.concatenate(([0], new))], ends[np.concatenate((new - 1, [starts.size - 1]))]
+
+
+def _ranges(starts, ends, offsets=None):
+    """The indices ``offsets[r] + (0 .. ends[r] - starts[r] - 1)`` of every range r, concatenated.
+
+    Without ``offsets``, the ranges' own indices ``starts[r] .. ends[r] - 1``.  No range is empty.
+    """
+    origin = starts if offsets is None else offsets
+    lengths = ends - starts
+    first = np.cumsum(lengths) - lengths  # where each range begins in the result
+    steps = np.ones(int(first[-1] + lengths[-1]) if lengths.size else 0, dtype=np.intp)
+    if lengths.size:  # the running sum of steps of 1, jumping to each range's origin
+        steps[0] = origin[0]
+        steps[first[1:]] = origin[1:] - (origin[:-1] + lengths[:-1] - 1)
+    return np.cumsum(steps, out=steps)
+
+
+def _sliding(source, starts, ends, reach, op):
+    """``op`` at the outputs in the ranges only, where output i reads ``source[..., i : i + reach + 1]``.
+
+    The ranges, each with the ``reach`` frames after it, are copied into one short
+    array (along the last axis); ``op`` maps an array of length L to its L - reach
+    outputs, each from its own frames only, so every output equals that of
+    ``op(source)``.  Returns (output indices, values).
+    """
+    spans = ends - starts + reach
+    begins = np.cumsum(spans) - spans  # where each range's copy begins
+    taken = _ranges(starts, ends + reach)  # source index of each copied frame
+    values = op(np.take(source, taken, axis=-1))  # (np.take: fast along the last axis too)
+    picks = _ranges(starts, ends, begins)  # the outputs that read their own range only
+    return taken[picks], values[picks]
+
+
+#: Outputs of a sliding stage are computed range by range while the ranges, with their reach,
+#: cover less than this fraction of the piece; above it, over the whole piece (our choice: the
+#: copies then cost more than they save).  Either way the values are the same.
+_SPARSE_FRACTION = 0.5
+#: The same for the interpolation, whose copies are cheap next to its 48 (24) products per window.
+_DENSE_INTERPOLATION = 0.8
+#: Samples (frames times channels) interpolated at a time: the temporaries stay in the cache
+#: (our choice, measured; the values do not depend on it).
+_INTERPOLATION_CHUNK = 1 << 15
+#: Frames of the attack sum at a time, for the same reason.
+_ATTACK_CHUNK = 1 << 14
+
+
+def _interpolate(block, phases):
+    """Largest ``|interpolated value|`` over channels and ``phases`` of every window ``block[:, i : i + 12]``.
+
+    ``block`` is (channels, frames).  Tap k multiplies ``block[:, i + 11 - k]`` and the
+    taps are summed in the order of :func:`render.truepeak.brute_force_true_peak`, so
+    the values are the same.
+    """
+    count = block.shape[-1] - (_TAPS - 1)
+    chunk = max(1024, _INTERPOLATION_CHUNK // block.shape[0])
+    if count > chunk:  # in chunks that stay in cache
+        return np.concatenate([_interpolate(block[:, start:start + chunk + _TAPS - 1], phases)
+                               for start in range(0, count, chunk)])
+    windows = [block[:, _TAPS - 1 - k: _TAPS - 1 - k + count] for k in range(_TAPS)]
     peak = None
     for p in phases:
         taps = INTERPOLATOR[p]
@@ -161,45 +252,55 @@ def _interpolate(column, phases, starts, out):
             acc += taps[k] * windows[k]
         np.abs(acc, out=acc)
         peak = acc if peak is None else np.maximum(peak, acc, out=peak)
-    out[starts] = np.maximum(out[starts], peak)
+    return peak[0] if peak.shape[0] == 1 else np.max(peak, axis=0)
 
 
-def _envelope(extended, phases, floor=None):
-    """Peak envelope of the frames ``extended[6:-6]``; ``extended`` has 6 frames either side.
+@functools.lru_cache(maxsize=None)
+def _skip_norm(phases):
+    """Largest L1 norm of the taps of ``phases``, with the 1e-12 slack of the skip bound."""
+    return max(float(np.abs(INTERPOLATOR[p]).sum()) for p in phases) * _BOUND_SLACK
+
+
+def _envelope(block, phases, floor=None):
+    """Peak envelope of the frames ``block[:, 6:-6]``; ``block`` is (channels, frames), 6 extra either side.
 
     Interval i (between frames i - 1 and i of the result) is interpolated from the
-    window ``extended[i : i + 12]``, the newest sample last: tap k multiplies
-    ``extended[i + 11 - k]`` and the taps are summed in the order of
-    :func:`render.truepeak.brute_force_true_peak`, so the values are the same.
+    window ``block[:, i : i + 12]``, the newest sample last (:func:`_interpolate`).
 
     With ``floor``, windows that cannot exceed it are not interpolated (their
     value reads 0): a window's value is at most the L1 norm of the taps times
     its largest ``|sample|`` (the bound of :mod:`render.truepeak`, with the same
-    1e-12 slack), so a window with no sample above ``floor / norm`` is skipped.
-    Values above ``floor`` are exactly those of the full computation.
+    1e-12 slack), so a window with no sample above ``floor / norm`` in any channel
+    is skipped.  The other windows come in runs; the runs (each with the 11 frames
+    after it) are copied into one short block and interpolated there, so every
+    value is the same arithmetic as in the full computation.  Values above
+    ``floor`` are exactly those of the full computation.
     """
-    count = extended.shape[0] - 2 * _RIGHT  # frames enveloped
+    count = block.shape[1] - 2 * _RIGHT  # frames enveloped
     intervals = count + 1
-    inter = np.zeros(intervals)
-    norm = max(float(np.abs(INTERPOLATOR[p]).sum()) for p in phases) * _BOUND_SLACK
-    for c in range(extended.shape[1]):
-        column = np.ascontiguousarray(extended[:, c])
-        if floor is None:
-            _interpolate(column, phases, slice(0, intervals), inter)
-            continue
-        hot = np.flatnonzero(np.abs(column) > floor / norm)
-        if hot.size == 0:
-            continue
-        mark = np.zeros(extended.shape[0] + _TAPS, dtype=bool)
-        for k in range(_TAPS):  # a hot sample at h lies in the windows starting at h - 11 .. h
-            mark[hot + (_TAPS - 1 - k)] = True
-        starts = np.flatnonzero(mark[_TAPS - 1:_TAPS - 1 + intervals])
-        if starts.size > intervals // 2:
-            _interpolate(column, phases, slice(0, intervals), inter)
-        else:
-            _interpolate(column, phases, starts, inter)
-    samples = np.max(np.abs(extended[_LEFT:_LEFT + count]), axis=1) if count else np.zeros(0)
-    return np.maximum(samples, np.maximum(inter[:-1], inter[1:]))
+    magnitude = np.abs(block)
+    magnitude = magnitude[0] if block.shape[0] == 1 else np.max(magnitude, axis=0)
+    samples = magnitude[_LEFT:_LEFT + count]  # the sample peak over the channels
+    if floor is None:
+        inter = _interpolate(block, phases)
+        return np.maximum(samples, np.maximum(inter[:-1], inter[1:]))
+    hot = np.flatnonzero(magnitude > floor / _skip_norm(phases))
+    if hot.size > _DENSE_INTERPOLATION * intervals:  # (the runs would cover at least as many)
+        inter = _interpolate(block, phases)
+        return np.maximum(samples, np.maximum(inter[:-1], inter[1:]))
+    envelope = samples.copy()
+    if hot.size:
+        starts, ends = _runs(hot, _TAPS - 1, 0, intervals)  # window i holds the frames i .. i + 11
+        if int((ends - starts).sum()) + starts.size * (_TAPS - 1) > _DENSE_INTERPOLATION * intervals:
+            inter = _interpolate(block, phases)
+            return np.maximum(samples, np.maximum(inter[:-1], inter[1:]))
+        where, values = _sliding(block, starts, ends, _TAPS - 1, lambda v: _interpolate(v, phases))
+        # interval i is next to frames i - 1 and i; the other intervals read 0 (<= |x|)
+        for side, first, last in ((where, 0, count), (where - 1, 1, count + 1)):
+            keep = slice(np.searchsorted(where, first), np.searchsorted(where, last))
+            frames, value = side[keep], values[keep]
+            envelope[frames] = np.maximum(envelope[frames], value)
+    return envelope
 
 
 def peak_envelope(signal, *, rate_hz):
@@ -227,8 +328,9 @@ def peak_envelope(signal, *, rate_hz):
     """
     x = _check_block(signal, None, "signal")
     phases = _phases_for(rate_hz)
-    pad = np.zeros((_RIGHT, x.shape[1]))
-    return _envelope(np.concatenate([pad, x, pad]), phases)
+    block = np.zeros((x.shape[1], x.shape[0] + 2 * _RIGHT))
+    block[:, _RIGHT:_RIGHT + x.shape[0]] = x.T
+    return _envelope(block, phases)
 
 
 # --------------------------------------------------------------------------- state
@@ -262,6 +364,13 @@ class LimiterState:
     release_peak : float
         ``max_j log(1 - m[j]) + j * release_per_frame`` over pipeline frames so
         far (``-inf`` while nothing was limited).
+    release_factor : float
+        ``sum_k w[k] exp(k * release_per_frame)``: in a pure release (the same
+        running maximum for frames ``n - K .. n``, and ``r`` on the release
+        curve there) ``1 - s[n]`` is this times ``1 - r[n]``.
+    attack_until : int
+        Pipeline frame up to which (exclusive) the attack is summed term by
+        term because a frame before ``pipe_out`` ended a pure release (0: none).
     lead_frames : int
         K + 6: zero frames the pipeline runs before frame 0, so the gain can
         come down before the first frame and the ringing before it is counted.
@@ -292,6 +401,8 @@ class LimiterState:
     required: np.ndarray
     smoothed_tail: np.ndarray
     release_peak: float
+    release_factor: float
+    attack_until: int
     lead_frames: int
     pipe_in: int
     pipe_enveloped: int
@@ -376,6 +487,7 @@ def limiter_init(*, rate_hz, channels, ceiling_dbtp, lookahead_ms=1.5, release_m
     weights = np.sin(np.pi * (k + 1) / (attack + 2)) ** 2
     weights /= weights.sum()
     weights.setflags(write=False)
+    release_per_frame = 1.0 / (release * 1e-3 * rate)
     channels = int(channels)
     state = LimiterState(
         rate_hz=rate,
@@ -386,12 +498,14 @@ def limiter_init(*, rate_hz, channels, ceiling_dbtp, lookahead_ms=1.5, release_m
         target=db_to_gain(ceiling - SAFETY_MARGIN_DB),
         attack_frames=attack,
         weights=weights,
-        release_per_frame=1.0 / (release * 1e-3 * rate),
+        release_per_frame=release_per_frame,
         phases=phases,
         tail=np.zeros((_LEFT, channels)),
         required=np.ones(HOLD_FRAMES),
         smoothed_tail=np.ones(attack),
         release_peak=-math.inf,
+        release_factor=float(np.sum(weights * np.exp(k * release_per_frame))),
+        attack_until=0,
         lead_frames=attack + _RIGHT,
         pipe_in=0,
         pipe_enveloped=0,
@@ -403,7 +517,7 @@ def limiter_init(*, rate_hz, channels, ceiling_dbtp, lookahead_ms=1.5, release_m
         flushed=False,
     )
     # The lead-in.  It yields no gains: it is shorter than the latency (K + 6 < K + 12).
-    _, state = _advance(state, np.zeros((state.lead_frames, channels)), final=False)
+    _, state = _advance(state, np.zeros((state.lead_frames, channels)), final=False, counted=0)
     return state
 
 
@@ -413,35 +527,172 @@ def _replace(state, **changes):
     return LimiterState(**fields)
 
 
-def _advance(state, piece, final):
+def _held(padded, width, count, low):
+    """Look-ahead minimum ``m[i] = min(padded[i : i + width])`` for i < count, and where it is below 1.
+
+    ``padded`` is ``g_req`` (<= 1) from ``width - 1`` frames ahead of output 0 on, below 1
+    at the sorted indices ``low``; the minimum is only taken near those (a minimum is exact,
+    so the values are those of one filter over everything).  Returns (m, or None when all
+    are 1; the sorted indices with ``m < 1``).
+    """
+    if low.size == 0:
+        return None, low
+
+    def window_min(values):
+        filtered = minimum_filter1d(values, size=width, mode="nearest")
+        return filtered[width // 2: width // 2 + values.size - width + 1]
+
+    if low.size <= _SPARSE_FRACTION * padded.size + width:  # else the ranges would cover as many
+        starts, ends = _runs(low, width - 1, 0, count)
+        if int((ends - starts).sum()) + starts.size * (width - 1) <= _SPARSE_FRACTION * padded.size:
+            held = np.ones(count)
+            where, values = _sliding(padded, starts, ends, width - 1, window_min)
+            held[where] = values
+            return held, where[np.flatnonzero(values < 1.0)]
+    held = window_min(padded)
+    return held, np.flatnonzero(held < 1.0)
+
+
+def _attack_sum(reduction, weights):
+    """``sum_k w[k] reduction[i + K - k]`` for i = 0 .. len - K - 1, summed in the order k = 0 .. K."""
+    K = weights.size - 1
+    count = reduction.size - K
+    if count > _ATTACK_CHUNK:  # in chunks that stay in cache
+        return np.concatenate([_attack_sum(reduction[start:start + _ATTACK_CHUNK + K], weights)
+                               for start in range(0, count, _ATTACK_CHUNK)])
+    acc = weights[0] * reduction[K:K + count]
+    for k in range(1, K + 1):
+        acc += weights[k] * reduction[K - k: K - k + count]
+    return acc
+
+
+def _release(state, held, low, count):
+    """Step 4 for the frames ``[pipe_out, pipe_out + count)`` with look-ahead minimum ``held`` (< 1 at ``low``).
+
+    ``1 - r[n] = max_j (1 - m[j]) a^(n - j)``, via a running maximum in the log domain:
+    ``level[j] = log(1 - m[j]) + j / (release_s rate_hz)`` is -inf where ``m[j] = 1``, so
+    the running maximum only changes at frames with ``m < 1`` and is a step function in
+    between.  Returns ``depth = exp(running max - n / (release_s rate_hz))`` (the release
+    curve's ``1 - r``), ``r``, the new running maximum and the frames (indices from 0)
+    that end a pure release: ``m`` below the release curve, or the running maximum rising.
+    """
+    slope = np.arange(state.pipe_out, state.pipe_out + count, dtype=np.float64)
+    slope *= state.release_per_frame  # j / (release_s rate_hz)
+    before = state.release_peak
+    dense = low.size > _SPARSE_FRACTION * count
+    if dense:  # over every frame
+        with np.errstate(divide="ignore"):
+            running = np.log(1.0 - held)
+        running += slope
+        np.maximum.accumulate(running, out=running)
+        np.maximum(running, before, out=running)
+        after = float(running[-1])
+        peaks = running
+    elif low.size:  # at the frames below 1 only, then filled in
+        peaks = np.log(1.0 - held[low])
+        peaks += slope[low]
+        np.maximum.accumulate(peaks, out=peaks)
+        np.maximum(peaks, before, out=peaks)
+        running = np.empty(count)
+        running[:low[0]] = before
+        running[low[0]:] = np.repeat(peaks, np.diff(low, append=count))
+        after = float(peaks[-1])
+    else:
+        running = peaks = None
+        after = before
+    if after == -math.inf:  # nothing limited yet: 1 - r is exactly 0
+        depth = np.zeros(count)
+    else:
+        depth = np.exp((running if running is not None else before) - slope)
+    released = 1.0 - depth
+    if held is not None:
+        np.minimum(held, released, out=released)
+    if peaks is None:
+        breaks = low
+    elif dense:  # the running maximum one frame earlier, at every frame
+        previous = np.concatenate(([before], running[:-1]))
+        breaks = np.flatnonzero((running > previous) | (held < released))
+    else:  # ... at the frames below 1 (it is constant in between)
+        previous = np.concatenate(([before], peaks[:-1]))
+        breaks = low[np.flatnonzero((peaks > previous) | (held[low] < released[low]))]
+    return depth, released, after, breaks
+
+
+def _attack(state, depth, released, breaks, count):
+    """Step 5 before the final minimum: ``s[n] = 1 - sum_k w[k] (1 - r[n - k])``.
+
+    Where ``r[j] = 1 - depth[j]`` under one running maximum for all j in ``n - K .. n``
+    (a pure release: no frame of ``breaks`` among them), ``depth[j] = depth[n] a^(j - n)``
+    and the sum is ``depth[n]`` times ``release_factor = sum_k w[k] a^-k``; elsewhere it is
+    summed term by term.  Returns (s, ``r`` from K frames before ``pipe_out`` on, the new
+    ``attack_until``).
+    """
+    K = state.attack_frames
+    gain = 1.0 - state.release_factor * depth
+    attack_until = state.attack_until
+    starts, ends = [], []
+    carried = attack_until - state.pipe_out
+    if carried > 0:
+        starts.append(np.zeros(1, dtype=np.intp))
+        ends.append(np.array([min(carried, count)]))
+    if breaks.size:
+        s, e = _runs(breaks, 0, K, count)
+        starts.append(s)
+        ends.append(e)
+        attack_until = max(attack_until, state.pipe_out + int(breaks[-1]) + K + 1)
+    history = np.concatenate([state.smoothed_tail, released])
+    if starts:
+        starts, ends = np.concatenate(starts), np.concatenate(ends)
+        if starts.size > 1:  # the carried range [0, <= K) may touch the first new one
+            starts, ends = _runs_merge(starts, ends)
+        w = state.weights
+        if int((ends - starts).sum()) + starts.size * K > _SPARSE_FRACTION * history.size:
+            where = _ranges(starts, ends)
+            gain[where] = 1.0 - _attack_sum(1.0 - history, w)[where]
+        else:
+            where, acc = _sliding(history, starts, ends, K, lambda h: _attack_sum(1.0 - h, w))
+            gain[where] = 1.0 - acc
+    return gain, history, attack_until
+
+
+def _advance(state, piece, final, counted):
     """Run the pipeline over ``piece`` (may be empty); with ``final`` the input ends after it.
 
-    Frames are pipeline frames; returns (gains of frames [pipe_out, new pipe_out), state).
+    ``counted`` of its frames are input frames (0 for the lead-in and the end's zeros).
+    Returns (the gains of input frames that became final, state).
     """
     K, H = state.attack_frames, HOLD_FRAMES
-    extended = np.concatenate([state.tail, piece]) if piece.shape[0] else state.tail
+    frames_in = state.frames_in + counted
     pipe_in = state.pipe_in + piece.shape[0]
-    if final:
-        extended = np.concatenate([extended, np.zeros((_RIGHT, state.channels))])
-        enveloped = pipe_in
-    else:
-        enveloped = max(state.pipe_enveloped, pipe_in - _RIGHT)
+    enveloped = pipe_in if final else max(state.pipe_enveloped, pipe_in - _RIGHT)
 
-    # 1-2. envelope and required gain of frames [pipe_enveloped, enveloped)
+    # 1-2. envelope and required gain of frames [pipe_enveloped, enveloped), from the input of
+    # frames pipe_enveloped - 6 .. enveloped + 6: the tail, the piece and, at the end, 6 zeros
     required = state.required
     if enveloped > state.pipe_enveloped:
-        use = enveloped - state.pipe_enveloped + 2 * _RIGHT
-        env = _envelope(extended[:use], state.phases, floor=state.target)
+        held_over, fresh = state.tail.shape[0], piece.shape[0]
+        block = np.empty((state.channels, held_over + fresh + (_RIGHT if final else 0)))  # channels first
+        block[:, :held_over] = state.tail.T
+        block[:, held_over:held_over + fresh] = piece.T
+        block[:, held_over + fresh:] = 0.0
+        env = _envelope(block, state.phases, floor=state.target)
         new_required = np.ones(env.shape[0])
-        hot = env > state.target
+        hot = np.flatnonzero(env > state.target)  # (an index array: faster than a boolean mask)
         new_required[hot] = state.target / env[hot]
+        low = np.concatenate([np.flatnonzero(required < 1.0), required.shape[0] + hot])
         required = np.concatenate([required, new_required])
-        tail = extended[enveloped - state.pipe_enveloped:]
-    else:
-        tail = extended
-    if final:
-        tail = tail[:0]
-        padded = np.concatenate([required, np.ones(K + H)])  # no frames after the end: nothing to hold
+        keep = enveloped - state.pipe_enveloped  # frames of the tail and piece no longer needed
+        if final:
+            tail = state.tail[:0]
+        elif keep >= held_over:
+            tail = piece[keep - held_over:].copy()
+        else:
+            tail = np.concatenate([state.tail[keep:], piece])
+    else:  # (never at the end: the final piece's 6 frames are always enveloped)
+        tail = np.concatenate([state.tail, piece]) if piece.shape[0] else state.tail
+        low = np.flatnonzero(required < 1.0)
+    if final:  # no frames after the end: nothing to hold
+        padded = np.concatenate([required, np.ones(K + H)])
     else:
         padded = required
 
@@ -451,57 +702,31 @@ def _advance(state, piece, final):
     count = done - state.pipe_out
     if count <= 0:
         return np.zeros(0), _replace(state, tail=tail, required=required, pipe_in=pipe_in,
-                                     pipe_enveloped=enveloped, flushed=final)
-    held = minimum_filter1d(padded, size=width, mode="nearest")[width // 2: width // 2 + count]
+                                     pipe_enveloped=enveloped, frames_in=frames_in, flushed=final)
+    held, low = _held(padded, width, count, low)  # held None: all 1
+    depth, released, release, breaks = _release(state, held, low, count)
+    gain, history, attack_until = _attack(state, depth, released, breaks, count)
+    np.minimum(gain, required[H:H + count], out=gain)
 
-    # 4. release: 1 - r[n] = max_j (1 - m[j]) a^(n - j), via a running max in the log domain
-    frame = np.arange(state.pipe_out, done, dtype=np.float64)
-    depth = 1.0 - held
-    with np.errstate(divide="ignore"):
-        level = np.log(depth)
-    level += frame * state.release_per_frame
-    running = np.maximum.accumulate(level)
-    np.maximum(running, state.release_peak, out=running)
-    release_peak = float(running[-1])
-    released = np.minimum(held, 1.0 - np.exp(running - frame * state.release_per_frame))
-
-    # 5. attack: s[n] = 1 - sum_k w[k] (1 - r[n - k]), so that s is exactly 1 where r is
-    history = np.concatenate([state.smoothed_tail, released])
-    reduction = 1.0 - history
-    w = state.weights
-    if reduction.any():
-        acc = w[0] * reduction[K:K + count]
-        for k in range(1, K + 1):
-            acc += w[k] * reduction[K - k: K - k + count]
-        gain = np.minimum(1.0 - acc, required[H:H + count])
-    else:  # nothing to reduce: the sum above is exactly 0
-        gain = np.ones(count)
-
-    return gain, _replace(
+    # the gains of input frames (the pipeline runs lead_frames ahead of the input's numbering)
+    first = state.pipe_out - state.lead_frames  # input frame of gain[0]
+    out = gain[max(0, -first):]
+    out = out[:max(0, frames_in - state.frames_out)]
+    return out, _replace(
         state,
         tail=tail,
         required=required[count:],
         smoothed_tail=history[-K:],
-        release_peak=release_peak,
+        release_peak=release,
+        attack_until=attack_until,
         pipe_in=pipe_in,
         pipe_enveloped=enveloped,
         pipe_out=done,
+        frames_in=frames_in,
+        frames_out=state.frames_out + out.size,
+        min_gain=min(state.min_gain, float(out.min())) if out.size else state.min_gain,
+        reduced_frames=state.reduced_frames + int(np.count_nonzero(out < 1.0)),
         flushed=final,
-    )
-
-
-def _emit(gain, before, state):
-    """Keep the gains of input frames from pipeline output ``gain`` (which started at ``before``)."""
-    first = before - state.lead_frames  # input frame of gain[0]
-    gain = gain[max(0, -first):]
-    gain = gain[:max(0, state.frames_in - state.frames_out)]
-    if gain.size == 0:
-        return gain, state
-    return gain, _replace(
-        state,
-        frames_out=state.frames_out + gain.size,
-        min_gain=min(state.min_gain, float(gain.min())),
-        reduced_frames=state.reduced_frames + int(np.count_nonzero(gain < 1.0)),
     )
 
 
@@ -534,11 +759,10 @@ def limiter_update(block, state):
     gains = []
     for start in range(0, x.shape[0], _PIECE):
         piece = x[start:start + _PIECE]
-        before = state.pipe_out
-        gain, state = _advance(state, piece, final=False)
-        state = _replace(state, frames_in=state.frames_in + piece.shape[0])
-        gain, state = _emit(gain, before, state)
+        gain, state = _advance(state, piece, final=False, counted=piece.shape[0])
         gains.append(gain)
+    if len(gains) == 1:
+        return gains[0], state
     return (np.concatenate(gains) if gains else np.zeros(0)), state
 
 
@@ -553,11 +777,9 @@ def limiter_flush(state):
         Flushed: read it with :func:`limiter_result`; it takes no more input.
     """
     _check_state(state)
-    before = state.pipe_out
     # Six zero frames after the end carry the intervals the meter reads there (the
     # interpolator's ringing); their gains are dropped.
-    gain, state = _advance(state, np.zeros((_RIGHT, state.channels)), final=True)
-    return _emit(gain, before, state)
+    return _advance(state, np.zeros((_RIGHT, state.channels)), final=True, counted=0)
 
 
 def limiter_result(state):

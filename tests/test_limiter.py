@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 from scipy.signal import resample_poly
 
+import render.limiter
 from render.errors import ParameterError
 from render.limiter import (
     HOLD_FRAMES,
@@ -71,6 +72,15 @@ def material(name, rate_hz, seconds=0.2, seed=7):
         quiet = 0.03 * band_limit(rng.standard_normal((frames, 1)), rate_hz, rate_hz / 4)
         hot = 2.0 * np.sin(2 * np.pi * 1000 * n / rate_hz)[:, None]
         return fade(np.concatenate([quiet, hot], axis=1), rate_hz), rate_hz / 4
+    if name == "clipped noise":  # heavy limiting: most frames need reduction
+        return np.clip(0.8 * rng.standard_normal((frames, 2)), -1.0, 1.0), rate_hz / 2
+    if name == "spike train":
+        # Sparse peaks in silence: the second is louder than the first's release curve (the release
+        # restarts), the third quieter (it stays under the curve), then two close together.
+        x = np.zeros((frames, 2))
+        for where, height in ((0.15, 1.5), (0.3, 2.5), (0.45, 1.2), (0.7, 2.0), (0.71, 1.8)):
+            x[int(where * frames), int(where * 10) % 2] = height
+        return x, rate_hz / 2
     raise KeyError(name)
 
 
@@ -104,12 +114,14 @@ def stream(x, block, **kwargs):
 # --------------------------------------------------------------------------- streaming
 
 
+@pytest.mark.parametrize("name", ["noise bursts", "clipped noise", "spike train"])
 @pytest.mark.parametrize(
     "frames, block",
-    [(400, 1), (9600, 7), (9600, 4801), (9600, 20000), (70000, 4801)],  # 70000 > the internal piece
+    # 73 = K + 1 frames, the attack's reach; 70000 > the internal piece
+    [(400, 1), (9600, 7), (9600, 73), (9600, 4801), (9600, 20000), (70000, 4801)],
 )
-def test_block_by_block_gains_equal_one_pass_exactly(frames, block):
-    x, _ = material("noise bursts", 48000, seconds=frames / 48000)
+def test_block_by_block_gains_equal_one_pass_exactly(name, frames, block):
+    x, _ = material(name, 48000, seconds=frames / 48000)
     settings = dict(rate_hz=48000, ceiling_dbtp=-3.0, lookahead_ms=1.5, release_ms=20.0)
     _, one_pass, _ = limit(x, **settings)
     blocked, state = stream(x, block, **settings)
@@ -163,14 +175,45 @@ def reference_gain(x, *, rate_hz, ceiling_dbtp, lookahead_ms, release_ms):
     return np.minimum(s, g_req)[lead:lead + x.shape[0]]
 
 
-@pytest.mark.parametrize("name, rate_hz", [("noise bursts", 48000), ("full-scale spike", 44100),
-                                           ("clipped square", 96000)])
-def test_gain_follows_the_documented_design(name, rate_hz):
-    x, _ = material(name, rate_hz, seconds=0.03)
-    settings = dict(rate_hz=rate_hz, ceiling_dbtp=-2.0, lookahead_ms=1.0, release_ms=5.0)
+@pytest.mark.parametrize(
+    "name, rate_hz, seconds, lookahead_ms, release_ms",
+    [
+        ("noise bursts", 48000, 0.03, 1.0, 5.0),
+        ("full-scale spike", 44100, 0.03, 1.0, 5.0),
+        ("clipped square", 96000, 0.03, 1.0, 5.0),
+        ("clipped noise", 48000, 0.03, 1.5, 50.0),  # limited almost everywhere
+        ("one hot channel", 44100, 0.05, 0.5, 20.0),
+        ("sine near Nyquist", 96000, 0.03, 2.0, 5.0),
+        ("spike train", 48000, 0.1, 1.5, 50.0),  # long releases between sparse peaks
+        ("spike train", 44100, 0.1, 1.0, 5.0),
+    ],
+)
+def test_gain_follows_the_documented_design(name, rate_hz, seconds, lookahead_ms, release_ms):
+    # The module's own arithmetic (sparse stages, the release's closed-form attack sum) against the
+    # docstring's five steps written as per-frame loops: equal to rounding (our choice: 1e-12).
+    x, _ = material(name, rate_hz, seconds=seconds)
+    settings = dict(rate_hz=rate_hz, ceiling_dbtp=-2.0, lookahead_ms=lookahead_ms, release_ms=release_ms)
     _, gain, _ = limit(x, **settings)
     expected = reference_gain(x, **settings)
+    assert np.any(expected < 0.9)  # the material is limited
     assert np.max(np.abs(gain - expected)) < 1e-12
+
+
+@pytest.mark.parametrize("name", ["noise bursts", "clipped noise", "spike train"])
+@pytest.mark.parametrize("fraction", [0.0, math.inf])
+def test_sparse_and_dense_stages_give_the_same_gains(name, fraction, monkeypatch):
+    # Each stage works range by range or over the whole piece, chosen per piece by how much is
+    # limited, and in chunks; the choices must not change a single bit (our choice: exact).
+    # 0: always the whole piece; inf: always range by range; small pieces and chunks, so that a
+    # boundary falls everywhere.
+    x, _ = material(name, 48000, seconds=0.2)
+    settings = dict(rate_hz=48000, ceiling_dbtp=-3.0, lookahead_ms=1.5, release_ms=20.0)
+    _, expected, _ = limit(x, **settings)
+    for constant, value in (("_SPARSE_FRACTION", fraction), ("_DENSE_INTERPOLATION", fraction), ("_PIECE", 997),
+                            ("_INTERPOLATION_CHUNK", 1000), ("_ATTACK_CHUNK", 101)):
+        monkeypatch.setattr(render.limiter, constant, value)
+    _, gain, _ = limit(x, **settings)
+    assert np.array_equal(gain, expected)
 
 
 # --------------------------------------------------------------------------- peak envelope
