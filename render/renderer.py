@@ -18,6 +18,9 @@ Two ways through:
   keeps the wet signal in a float temporary; the batch decides the gain (per
   file or per group); :func:`render_task` with ``gain_db`` then reads the
   source and the temporary, applies the gain (and limiter), dithers and writes.
+  With a target and the limiter, :func:`makeup_gain_db` first probes the gain
+  that makes up what limiting takes off (limiter and meter only, nothing
+  written), so the stems are written once.
 
 The gain and the limiter's gain curve are applied to ``dry`` and ``wet``
 alike.  For integer outputs ``dry`` and ``wet`` are dithered and ``mix`` is
@@ -43,7 +46,7 @@ from .errors import AudioInputError, OutputError, RenderError
 from .response_cache import cached_synthesize
 from .units import db_to_gain, gain_to_db
 
-__all__ = ["render_task", "measure_task", "kernel_for", "CUT_FADE_S", "TEMP_DIR", "temp_path_for"]
+__all__ = ["render_task", "measure_task", "makeup_gain_db", "kernel_for", "CUT_FADE_S", "TEMP_DIR", "temp_path_for"]
 
 #: Fade of the wet stem at the end of the source with ``tail = "cut"``, in seconds.
 CUT_FADE_S = 0.05
