@@ -1,6 +1,13 @@
 """Beyond one machine: shards, merging, Dask, and the same bytes everywhere."""
 
 import json
+import multiprocessing
+import operator
+import os
+import signal
+import subprocess
+import sys
+import time
 
 import numpy as np
 import pytest
@@ -8,6 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from conftest import SMALL_ROOM, speechlike, write_audio
+from render.batch import prestart_scheduler
 from render.cli import EXIT_OK, EXIT_PARTIAL, main
 from render.errors import ParameterError
 from render.shards import assign_shards, parse_shard
@@ -116,3 +124,89 @@ def test_a_task_failing_inside_a_dask_worker_is_recorded(tmp_path):
     status = {e["source"]: e["status"] for e in m["sources"]}
     assert status.pop("in/cut.flac") == "failed"
     assert set(status.values()) == {"rendered"}
+
+
+@pytest.fixture
+def one_worker_cluster(monkeypatch):
+    """A one-worker local cluster through the batch's own executor, closed afterwards."""
+    pytest.importorskip("distributed")
+    from render.batch import _DaskExecutor
+
+    # Unset, so the workers get the batch's choices; the nanny also writes them into this process's
+    # environment, which monkeypatch restores afterwards.
+    for name in ("MALLOC_TRIM_THRESHOLD_", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS",
+                 "PYTHONHASHSEED"):
+        monkeypatch.delenv(name, raising=False)
+    executor = _DaskExecutor("local", 1)
+    try:
+        yield executor
+    finally:
+        executor.shutdown(wait=False)
+
+
+def test_local_dask_workers_keep_the_default_malloc_trimming(one_worker_cluster):
+    # glibc mallopt(3): setting M_TRIM_THRESHOLD (MALLOC_TRIM_THRESHOLD_) turns off the dynamic mmap
+    # threshold, so every large buffer is mapped and faulted in afresh; distributed sets it by default.
+    assert one_worker_cluster.submit(os.getenv, "MALLOC_TRIM_THRESHOLD_").result() is None
+    # ... while the numerics stay single-threaded in each worker (distributed's default, our choice too).
+    assert one_worker_cluster.submit(os.getenv, "OMP_NUM_THREADS").result() == "1"
+
+
+@pytest.mark.skipif("forkserver" not in multiprocessing.get_all_start_methods(), reason="no forkserver here")
+def test_local_dask_workers_fork_from_the_prestarted_server(one_worker_cluster):
+    # Our choice: workers fork from a server that has imported render, so they are not this process's
+    # children (the nanny's spawned workers were); starting it again is a no-op.
+    assert prestart_scheduler("local") is True
+    assert one_worker_cluster.submit(os.getppid).result() != os.getpid()
+
+
+@pytest.mark.parametrize("scheduler", [None, "tcp://127.0.0.1:8786"])
+def test_prestart_does_nothing_for_other_schedulers(scheduler):
+    assert prestart_scheduler(scheduler) is False
+
+
+def test_a_dead_local_worker_is_replaced_and_only_its_task_fails(one_worker_cluster):
+    # Our choice: a task that kills its worker fails alone (after the retries), the cluster goes on.
+    doomed = one_worker_cluster.submit(os._exit, 3)
+    from distributed import KilledWorker
+
+    with pytest.raises(KilledWorker, match="died"):
+        doomed.result()
+    assert one_worker_cluster.submit(operator.add, 2, 3).result() == 5
+
+
+def test_ctrl_c_cancels_the_pending_dask_tasks(one_worker_cluster):
+    # What run_plan does on KeyboardInterrupt: pending work is cancelled, not waited for (common practice,
+    # as concurrent.futures' cancel_futures).
+    pending = [one_worker_cluster.submit(time.sleep, 0.5) for _ in range(20)]
+    one_worker_cluster.shutdown(wait=True, cancel_futures=True)
+    assert sum(f.cancelled() for f in pending) >= 15
+
+
+@pytest.mark.skipif(sys.platform == "win32", reason="SIGINT to a process group is POSIX")
+def test_ctrl_c_in_a_terminal_stops_a_local_dask_run_and_keeps_what_finished(tmp_path):
+    # A terminal's Ctrl-C goes to the whole process group: the batch, the forkserver and the workers.
+    pytest.importorskip("distributed")
+    rng = np.random.default_rng(12)
+    for i in range(12):
+        write_audio(tmp_path / "in" / f"take{i:02d}.wav", speechlike(rng, 48000 * 10, 2), 48000, "PCM_24")
+    job = tmp_path / "job.toml"
+    job.write_text(f'[job]\noutput = "out"\n{SMALL_ROOM}\n[[sources]]\nfiles = ["in/*.wav"]\nroom = "box"\n')
+    proc = subprocess.Popen([sys.executable, "-m", "render", "run", str(job), "--jobs", "2", "--scheduler", "local"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
+    out = tmp_path / "out"
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and not list(out.glob("take*.wav")) and proc.poll() is None:
+        time.sleep(0.02)  # wait until the first file is finished, then interrupt
+    os.killpg(proc.pid, signal.SIGINT)
+    try:
+        _, err = proc.communicate(timeout=120)  # before: shutting down waited for every pending task, forever
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        raise
+    assert proc.returncode == 130, err[-2000:]
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["summary"]["interrupted"] is True
+    # What had come back is recorded (a file finished but not yet reported is not run, as with the pool).
+    assert {e["status"] for e in manifest["sources"]} <= {"rendered"}
+    assert manifest["summary"]["rendered"] + manifest["summary"]["not_run"] == 12
