@@ -29,6 +29,7 @@ import numpy as np
 from . import audio_io
 from .delivery import decide_gain
 from .errors import OutputError, ParameterError, RenderError
+from .forkserver import prestart_scheduler
 from .loudness import integrated_over
 from .manifest import new_manifest, read_manifest, write_bytes_atomic, write_json_atomic
 from .plan import MANIFEST_NAME, response_files
@@ -447,53 +448,8 @@ _LOCAL_CLUSTER_CONFIG = {
     "distributed.worker.memory.monitor-interval": "1s",
     "distributed.admin.system-monitor.interval": "2s",
 }
-#: Environment of the forkserver, hence of the workers, unless the user set these: single-threaded
-#: numerics, as distributed's own pre-spawn defaults (the server starts before distributed is imported).
-_FORKSERVER_ENV = {"OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"}
 #: Seconds a local cluster's close may take; then the batch goes on (the workers end with this process).
 _CLOSE_TIMEOUT_S = 10.0
-
-
-def prestart_scheduler(scheduler):
-    """Start early what a ``scheduler`` (as for :func:`run_plan`) takes long to start; optional.
-
-    For ``"local"``, where the platform has ``forkserver``: the process that
-    the cluster's workers will fork from, importing distributed and render
-    (about 2 s of imports) while the caller goes on, e.g. planning.  Nothing
-    for other schedulers, or without Dask.  Calling it again does nothing.
-
-    Returns
-    -------
-    bool
-        Whether the local cluster's workers will fork from that server.
-    """
-    import importlib.util
-
-    if scheduler != "local" or "forkserver" not in multiprocessing.get_all_start_methods():
-        return False
-    if importlib.util.find_spec("distributed") is None:
-        return False
-    _start_forkserver()
-    return True
-
-
-def _start_forkserver():
-    """Start the forkserver (if not running) importing distributed and this module, workers fork ready.
-
-    Distributed sets its own preload list on first use; the server is running
-    by then, so that list is not used.
-    """
-    from multiprocessing import forkserver
-
-    saved = dict(os.environ)
-    os.environ.update({k: v for k, v in _FORKSERVER_ENV.items() if k not in saved})
-    try:
-        multiprocessing.get_context("forkserver").set_forkserver_preload(["distributed", __name__])
-        forkserver.ensure_running()
-    finally:
-        for k in _FORKSERVER_ENV:
-            if k not in saved:
-                os.environ.pop(k, None)
 
 
 def _executor(jobs, scheduler=None):

@@ -215,6 +215,10 @@ def _cmd_check(args):
 
 
 def _cmd_run(args):
+    if args.scheduler is not None:
+        from .forkserver import prestart_scheduler
+
+        prestart_scheduler(args.scheduler)  # before the heavy imports below, which it overlaps
     from .batch import run_plan
     from .job import load_job
     from .plan import plan_job
