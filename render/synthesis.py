@@ -510,7 +510,7 @@ def _synthesize(room, *, rate_hz, channels, tail_floor_db, calibrate, tolerance_
         if design.networks > channels:
             per_network[channels:] = np.exp(np.log(ratio).mean(axis=0))
         design_s = np.clip(design_s * per_network, 0.5 * targets, DECAY_MARGIN * targets)
-    del er, table
+    er = table = None  # free both for what follows: render_tail is not called again
     finite = np.isfinite(measured_ch)
     measured = np.where(finite.any(axis=0), np.where(finite, measured_ch, 0.0).sum(axis=0) / np.maximum(finite.sum(axis=0), 1), np.nan)
 
