@@ -29,7 +29,7 @@ import numpy as np
 from . import audio_io
 from .delivery import decide_gain
 from .errors import OutputError, ParameterError, RenderError
-from .forkserver import prestart_scheduler
+from .process_setup import prestart_scheduler, tune_allocator
 from .loudness import integrated_over
 from .manifest import new_manifest, read_manifest, write_bytes_atomic, write_json_atomic
 from .plan import MANIFEST_NAME, response_files
@@ -505,6 +505,7 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False, shard=None, schedule
             owners = assign_shards([task_weight(t) for t in plan.tasks], shards=n)
         selected = [i for i in selected if owners[i] == k - 1]
         manifest_path = out_dir / shard_manifest_name(k, n)
+    tune_allocator()  # before the first large buffer; forked pool workers inherit it
     lock = _Lock(out_dir, ".render.lock" if shard is None else f".render.shard-{shard[0]}-of-{shard[1]}.lock")
     with lock:
         return _run_locked(plan, out_dir, manifest_path, selected, jobs=jobs, quiet=quiet, resume=resume,

@@ -216,7 +216,7 @@ def _cmd_check(args):
 
 def _cmd_run(args):
     if args.scheduler is not None:
-        from .forkserver import prestart_scheduler
+        from .process_setup import prestart_scheduler
 
         prestart_scheduler(args.scheduler)  # before the heavy imports below, which it overlaps
     from .batch import run_plan

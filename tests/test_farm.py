@@ -134,8 +134,8 @@ def one_worker_cluster(monkeypatch):
 
     # Unset, so the workers get the batch's choices; the nanny also writes them into this process's
     # environment, which monkeypatch restores afterwards.
-    for name in ("MALLOC_TRIM_THRESHOLD_", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS",
-                 "PYTHONHASHSEED"):
+    for name in ("MALLOC_TRIM_THRESHOLD_", "MALLOC_MMAP_THRESHOLD_", "MALLOC_TOP_PAD_", "OMP_NUM_THREADS",
+                 "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS", "PYTHONHASHSEED"):
         monkeypatch.delenv(name, raising=False)
     executor = _DaskExecutor("local", 1)
     try:
@@ -144,10 +144,17 @@ def one_worker_cluster(monkeypatch):
         executor.shutdown(wait=False)
 
 
-def test_local_dask_workers_keep_the_default_malloc_trimming(one_worker_cluster):
+def test_local_dask_workers_get_our_allocator_settings_not_distributeds(one_worker_cluster):
     # glibc mallopt(3): setting M_TRIM_THRESHOLD (MALLOC_TRIM_THRESHOLD_) turns off the dynamic mmap
-    # threshold, so every large buffer is mapped and faulted in afresh; distributed sets it by default.
-    assert one_worker_cluster.submit(os.getenv, "MALLOC_TRIM_THRESHOLD_").result() is None
+    # threshold; distributed's default of 65536 makes every large buffer mapped and faulted in afresh.
+    # Workers forked from our server get our settings instead (large buffers stay on the heap); spawned
+    # workers get none.
+    from render.process_setup import MALLOC_SETTINGS
+
+    forked = "forkserver" in multiprocessing.get_all_start_methods()
+    for name, (_, value) in MALLOC_SETTINGS.items():
+        expected = str(value) if forked else None
+        assert one_worker_cluster.submit(os.getenv, f"MALLOC_{name}_").result() == expected, name
     # ... while the numerics stay single-threaded in each worker (distributed's default, our choice too).
     assert one_worker_cluster.submit(os.getenv, "OMP_NUM_THREADS").result() == "1"
 
@@ -210,3 +217,15 @@ def test_ctrl_c_in_a_terminal_stops_a_local_dask_run_and_keeps_what_finished(tmp
     # What had come back is recorded (a file finished but not yet reported is not run, as with the pool).
     assert {e["status"] for e in manifest["sources"]} <= {"rendered"}
     assert manifest["summary"]["rendered"] + manifest["summary"]["not_run"] == 12
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="glibc's mallopt")
+def test_tune_allocator_applies_each_setting_unless_the_user_gave_it(monkeypatch):
+    # mallopt(3) returns 1 for every parameter it accepts; a value set in the environment is the user's.
+    from render.process_setup import MALLOC_SETTINGS, tune_allocator
+
+    for name in MALLOC_SETTINGS:
+        monkeypatch.delenv(f"MALLOC_{name}_", raising=False)
+    assert tune_allocator() == {name: value for name, (_, value) in MALLOC_SETTINGS.items()}
+    monkeypatch.setenv("MALLOC_TOP_PAD_", "0")
+    assert "TOP_PAD" not in tune_allocator()
