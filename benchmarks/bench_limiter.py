@@ -1,7 +1,7 @@
 """Benchmark: the true-peak limiter against a committed version of itself, in one process.
 
 The baseline is ``render/limiter.py`` as committed at ``--baseline`` (default
-``HEAD``), read with ``git show`` and loaded as a private module next to the
+``547ac99``, the last version before the speed-up), read with ``git show`` and loaded as a private module next to the
 working tree's.  Both run on the same material, alternately, block by block
 as the renderer feeds them (``limiter_update`` with ``--block-frames``, then
 ``limiter_flush``); the figures are the medians of ``--repeats`` runs of the
@@ -23,7 +23,7 @@ Materials (invented, seeded):
 * **clipped noise**: Gaussian noise at 0.8 rms clipped to full scale, so that
   most frames need reduction (heavy limiting).
 
-    python benchmarks/bench_limiter.py [--seconds 60] [--repeats 7] [--baseline HEAD]
+    python benchmarks/bench_limiter.py [--seconds 60] [--repeats 7] [--baseline 547ac99]
 """
 
 import argparse
@@ -125,7 +125,7 @@ def main():
     parser.add_argument("--block-frames", type=int, default=200_000, help="frames per limiter_update call")
     parser.add_argument("--reduced-percent", type=float, default=2.0,
                         help="speech-like material: percent of frames that need reduction")
-    parser.add_argument("--baseline", default="HEAD", help="git revision of the baseline limiter")
+    parser.add_argument("--baseline", default="547ac99", help="git revision of the baseline limiter")
     args = parser.parse_args()
     baseline = load_baseline(args.baseline)
     frames = int(args.seconds * RATE_HZ)

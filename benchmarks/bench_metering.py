@@ -8,12 +8,12 @@ figures of this run; asserts nothing.
 
 With ``--before-after [REV]`` it instead compares the per-sample kernels of
 render.loudness, render.truepeak and render.dither with the versions committed
-at REV (default HEAD, loaded from ``git show`` into private modules), in one
+at REV (default 547ac99, the last version before the speed-up, loaded from ``git show`` into private modules), in one
 process: 60 s of 48 kHz stereo noise in blocks of 400 000 frames, old and new
 run alternately, medians of the repeats.  It also checks that the results
 agree (loudness to 1e-12 relative, true peak and dither bit for bit).
 
-    python benchmarks/bench_metering.py --before-after [HEAD] [--repeats 5]
+    python benchmarks/bench_metering.py --before-after [547ac99] [--repeats 5]
 """
 
 import argparse
@@ -218,8 +218,8 @@ def main():
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--minutes", type=float, default=2.0)
     parser.add_argument("--repeats", type=int, default=None, help="default 3, or 5 with --before-after")
-    parser.add_argument("--before-after", nargs="?", const="HEAD", default=None, metavar="REV",
-                        help="compare the metering kernels with those committed at REV (default HEAD)")
+    parser.add_argument("--before-after", nargs="?", const="547ac99", default=None, metavar="REV",
+                        help="compare the metering kernels with those committed at REV (default 547ac99)")
     parser.add_argument("--seconds", type=float, default=60.0, help="signal length for --before-after")
     parser.add_argument("--block-frames", type=int, default=400_000, help="block size for --before-after")
     parser.add_argument("--true-peak-signals", action="store_true",
