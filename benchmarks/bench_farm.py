@@ -142,8 +142,9 @@ def _run(root, label, extra):
     phases_path = root / "phases.json"
     argv = ["run", str(root / "job.toml"), "--quiet", *extra]
     t0 = time.time()
+    env = dict(os.environ, RENDER_CACHE_DIR=str(root / "response-cache"))  # not the user's cache
     proc = subprocess.Popen([sys.executable, __file__, "--child", str(phases_path), *argv],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
     output, closed = {}, {}
 
     def drain(name, stream):
