@@ -38,6 +38,7 @@ __all__ = [
     "read_all",
     "output_format",
     "predicted_bytes",
+    "wav_container",
     "BlockWriter",
     "write_response",
     "sha256_file",
@@ -308,7 +309,7 @@ def output_format(*, requested_format, requested_subtype, source, predicted_byte
     else:
         raise OutputError(f"subtype = {requested_subtype!r}: expected 'same', 'PCM_16', 'PCM_24' or 'FLOAT'")
 
-    if container == "WAV" and predicted_bytes > RIFF_LIMIT_BYTES - RF64_MARGIN_BYTES:
+    if container == "WAV" and _needs_rf64(predicted_bytes):
         container = "RF64"
     return container, subtype
 
@@ -324,6 +325,25 @@ _FLAC_METADATA_BYTES = 4096
 _FLAC_FRAME_SAMPLES = 1024
 _FLAC_FRAME_BYTES = 18
 _FLAC_SUBFRAME_BYTES = 2
+
+
+def _needs_rf64(size_bytes):
+    return size_bytes > RIFF_LIMIT_BYTES - RF64_MARGIN_BYTES
+
+
+def wav_container(*, frames, channels, subtype):
+    """``'WAV'``, or ``'RF64'`` when such a WAV file would not fit a RIFF header (as :func:`output_format`).
+
+    For the files ``render`` writes for itself (responses, two-pass
+    temporaries), whose subtype is fixed rather than requested.
+
+    >>> wav_container(frames=48000, channels=2, subtype="DOUBLE")
+    'WAV'
+    >>> wav_container(frames=6 * 3600 * 48000, channels=2, subtype="DOUBLE")
+    'RF64'
+    """
+    return "RF64" if _needs_rf64(predicted_bytes(frames=frames, channels=channels, subtype=subtype, format="WAV")) \
+        else "WAV"
 
 
 def predicted_bytes(*, frames, channels, subtype, format):
@@ -620,8 +640,7 @@ def write_response(path, ir, *, rate_hz):
     ir = np.asarray(ir)
     if ir.ndim != 2 or ir.shape[0] < 1 or ir.shape[1] < 1:
         raise OutputError(f"{os.fspath(path)}: ir has shape {ir.shape}: expected (frames, channels), frames >= 1")
-    size = predicted_bytes(frames=ir.shape[0], channels=ir.shape[1], subtype="FLOAT", format="WAV")
-    format = "RF64" if size > RIFF_LIMIT_BYTES - RF64_MARGIN_BYTES else "WAV"
+    format = wav_container(frames=ir.shape[0], channels=ir.shape[1], subtype="FLOAT")
     with BlockWriter(path, rate_hz=rate_hz, channels=ir.shape[1], format=format, subtype="FLOAT") as w:
         w.write(ir)
     return w.path

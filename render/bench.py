@@ -362,15 +362,14 @@ def _child_compare(job_path, *, gain_db, rel):
     """Our render of the job's first source, mix stem only, DOUBLE (no dither), fixed gain, no limiter."""
     import dataclasses
 
-    from .audio_io import RF64_MARGIN_BYTES, RIFF_LIMIT_BYTES, predicted_bytes
+    from .audio_io import wav_container
     from .job import load_job
     from .plan import plan_job
     from .renderer import render_task
 
     plan = plan_job(load_job(job_path))
     task = plan.tasks[0]
-    size = predicted_bytes(frames=task.frames_out, channels=task.channels_out, subtype="DOUBLE", format="wav")
-    container = "RF64" if size > RIFF_LIMIT_BYTES - RF64_MARGIN_BYTES else "WAV"
+    container = wav_container(frames=task.frames_out, channels=task.channels_out, subtype="DOUBLE")
     task = dataclasses.replace(task, subtype="DOUBLE", format=container, outputs=(("mix", rel),))
     facts = render_task(task, output_dir=plan.job.output_dir, gain_db=gain_db, limit=None)
     return {"path": str(plan.job.output_dir / rel), "frames": facts["stems"]["mix"]["frames"]}
@@ -614,6 +613,7 @@ class _Run:
         # Set by _measure and the end-to-end section, read by the later sections.
         self.job = self.src = self.frames = None
         self.entry = self.ir_path = self.frames_out = self.ir_channels = self.e2e_rss = None
+        self.caches = 0  # response cache folders handed out by cold_cache()
 
     @property
     def warm_cache(self):
@@ -622,8 +622,8 @@ class _Run:
 
     def cold_cache(self):
         """A response cache folder no run has used yet (the first one becomes :attr:`warm_cache`)."""
-        self._caches = getattr(self, "_caches", 0) + 1
-        return self.root / f"cache-{self._caches - 1}"
+        self.caches += 1
+        return self.root / f"cache-{self.caches - 1}"
 
     def timed(self, label, values):
         """Note the spread of repeated timings under ``label``; return their median."""

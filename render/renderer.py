@@ -277,8 +277,7 @@ class _Meter:
 
     def hops(self):
         """Per-100 ms weighted energies (for group loudness), as a list."""
-        s = self.loud
-        return s._hops.buf[: s._hop_count].tolist()
+        return self.loud.hop_energies().tolist()
 
 
 def _unlink(path):
@@ -305,8 +304,7 @@ def measure_task(task, *, output_dir):
     temp = temp_path_for(task, output_dir)
     temp.parent.mkdir(parents=True, exist_ok=True)
     meter = _Meter(task.info.rate_hz, task.channels_out)
-    container = "WAV" if audio_io.predicted_bytes(frames=task.frames_out, channels=task.channels_out, subtype="DOUBLE",
-                                                  format="wav") <= audio_io.RIFF_LIMIT_BYTES - audio_io.RF64_MARGIN_BYTES else "RF64"
+    container = audio_io.wav_container(frames=task.frames_out, channels=task.channels_out, subtype="DOUBLE")
     with audio_io.BlockWriter(temp, rate_hz=task.info.rate_hz, channels=task.channels_out, format=container,
                               subtype="DOUBLE", durable=False) as w:
         for dry, wet in _convolved(task, kernel, _SourceCheck(task)):
