@@ -14,22 +14,25 @@ What: one entry per response, named by a sha256 key of everything that shapes
 it (:func:`cache_key`: the engine version, the room's fingerprint, the rate,
 the channel count, the tail floor, the other synthesis settings, and the
 numpy and scipy major.minor versions, whose arithmetic the samples depend on).
-An entry is two files: ``<key>.npy``, the float64 response, and ``<key>.json``,
-the :class:`~render.synthesis.Response`'s other fields plus the sha256 of the
-samples.
+An entry is one file, ``<key>.response``: a first line naming the layout
+(``render response cache entry 2``), a second line of JSON (the
+:class:`~render.synthesis.Response`'s other fields, the samples' shape and
+their sha256), then the samples as little-endian float64, frame by frame.
+One file, so one rename publishes the samples and the metadata that vouches
+for them together.
 
 Safety:
 
-* each file is written under a unique temporary name in the cache folder
+* an entry is written under a unique temporary name in the cache folder
   (host, process and a random part; created with ``O_EXCL``) and renamed over
-  the entry in one step (``os.replace``), so a reader sees an old file or a
-  new one, never half of one, and any number of processes or machines may
-  write the same entry at once (on shared storage too);
-* a read takes the metadata, then the samples, each file read once, and uses
-  them only if they agree (key, shape, dtype, sha256 of the samples, room
-  fingerprint, frame count); anything else (a truncated, damaged or
-  mismatching entry, or two writers' files crossed) is a miss, is synthesised
-  again and written over;
+  the entry in one step (``os.replace``), so a reader sees an old entry or a
+  new one, never half of one or parts of two, and any number of processes or
+  machines may write the same entry at once (on shared storage too): the
+  entry left is one writer's whole;
+* a read takes the file once and uses it only if everything agrees (layout,
+  key, shape, length, sha256 of the samples, room fingerprint, frame count);
+  anything else (a truncated, damaged or mismatching entry) is a miss, is
+  synthesised again and written over;
 * the cache never raises: an unreadable entry is a miss, an unwritable folder
   only means nothing is stored, and errors in the arguments are the
   :class:`~render.errors.ParameterError` of :func:`render.synthesis.synthesize`.
@@ -40,7 +43,8 @@ written last is served to all of them, which keeps a farm's outputs alike.
 
 Nothing is ever deleted: entries are about the size of the response (1-10 MB
 at 48 kHz), the folder may be removed at any time, and so may a ``.part`` file
-a killed writer left behind.
+a killed writer left behind (or the ``.npy`` and ``.json`` pairs of layout 1,
+which no key names any more).
 
 Example (a temporary cache folder):
 
@@ -51,7 +55,7 @@ Example (a temporary cache folder):
 >>> room = Room(decay_s=0.3, size_m=(4.0, 3.0, 2.5))
 >>> r = cached_synthesize(room, rate_hz=16000, channels=1, tail_floor_db=-80.0)
 >>> sorted(p.suffix for p in cache_dir().iterdir())
-['.json', '.npy']
+['.response']
 >>> shutil.rmtree(folder)
 >>> _ = os.environ.pop("RENDER_CACHE_DIR") if saved is None else os.environ.update(RENDER_CACHE_DIR=saved)
 """
@@ -71,12 +75,16 @@ import scipy
 
 from . import synthesis
 
-__all__ = ["cache_dir", "cache_key", "entry_paths", "cached_synthesize", "ENV_VAR", "FORMAT_VERSION"]
+__all__ = ["cache_dir", "cache_key", "entry_path", "cached_synthesize", "ENV_VAR", "FORMAT_VERSION"]
 
 #: Environment variable naming the cache folder (``off`` or empty: no cache).
 ENV_VAR = "RENDER_CACHE_DIR"
-#: Layout of an entry; part of every key.
-FORMAT_VERSION = 1
+#: Layout of an entry; part of every key (1: a .npy and a .json file; 2: one file).
+FORMAT_VERSION = 2
+#: First line of an entry file.
+_MAGIC = f"render response cache entry {FORMAT_VERSION}\n".encode("ascii")
+#: Longest metadata line read (a 16-channel response's is about 10 kB).
+_MAX_META_BYTES = 1 << 20
 
 #: synthesize()'s settings that cached_synthesize leaves at their defaults (part of every key).
 _DEFAULTS = {
@@ -160,18 +168,18 @@ def cache_key(room, *, rate_hz, channels, tail_floor_db):
     return _digest(_identity(room, rate_hz, channels, tail_floor_db)[1])
 
 
-def entry_paths(key, folder=None):
-    """The two files of an entry: ``(<key>.npy, <key>.json)`` in ``folder`` (default :func:`cache_dir`).
+def entry_path(key, folder=None):
+    """The file of an entry: ``<key>.response`` in ``folder`` (default :func:`cache_dir`).
 
     Returns
     -------
-    (pathlib.Path, pathlib.Path) or None
+    pathlib.Path or None
         None when the cache is off.
     """
     folder = cache_dir() if folder is None else Path(folder)
     if folder is None:
         return None
-    return folder / f"{key}.npy", folder / f"{key}.json"
+    return folder / f"{key}.response"
 
 
 def cached_synthesize(room, *, rate_hz, channels, tail_floor_db):
@@ -213,7 +221,7 @@ def cached_synthesize(room, *, rate_hz, channels, tail_floor_db):
         return hit if hit is not None else _synthesize(room, rate_hz, channels, tail_floor_db)
     name = _digest(ident)
     if hit is not None:
-        if not _exists(folder / f"{name}.json"):
+        if not _exists(entry_path(name, folder)):
             _store(folder, name, ident, hit)
         return hit
     response = _load(folder, name, ident, key)
@@ -260,59 +268,55 @@ def _response_fields(response):
     }
 
 
-def _read_samples(path, shape, sha256):
-    """The float64 samples of a ``.npy`` file read once, or None unless shape and sha256 agree."""
-    with open(path, "rb") as f:
-        version = np.lib.format.read_magic(f)
-        if version == (1, 0):
-            header = np.lib.format.read_array_header_1_0(f)
-        elif version == (2, 0):
-            header = np.lib.format.read_array_header_2_0(f)
-        else:
-            return None
-        file_shape, fortran_order, dtype = header
-        if tuple(file_shape) != shape or fortran_order or dtype != np.dtype(np.float64):
-            return None
-        if os.fstat(f.fileno()).st_size != f.tell() + 8 * shape[0] * shape[1]:
-            return None  # truncated, or longer than its header says
-        ir = np.empty(shape, dtype=np.float64)
-        view = memoryview(ir).cast("B")
-        done = 0
-        while done < view.nbytes:
-            count = f.readinto(view[done:])
-            if not count:
-                return None  # truncated
-            done += count
-        if f.read(1):
-            return None  # longer than its header says
+def _read_samples(f, shape, sha256):
+    """The float64 samples that follow the metadata in an open entry, or None unless length and sha256 agree."""
+    if os.fstat(f.fileno()).st_size != f.tell() + 8 * shape[0] * shape[1]:
+        return None  # truncated, or longer than its metadata says
+    ir = np.empty(shape, dtype="<f8")
+    view = memoryview(ir).cast("B")
+    done = 0
+    while done < view.nbytes:
+        count = f.readinto(view[done:])
+        if not count:
+            return None  # truncated while being read
+        done += count
+    if f.read(1):
+        return None  # grew while being read
     if hashlib.sha256(view).hexdigest() != sha256:
         return None
+    ir = ir.astype(np.float64, copy=False)  # native order (a no-op on little-endian machines)
     ir.setflags(write=False)
     return ir
 
 
 def _load(folder, name, ident, key):
     """The Response of an entry, or None for a missing, unreadable or inconsistent one (never raises)."""
-    npy, meta_path = entry_paths(name, folder)
     try:
-        with open(meta_path, "rb") as f:
-            meta = json.loads(f.read().decode("utf-8"))
-        if meta.get("key") != name or meta.get("identity") != json.loads(json.dumps(ident)):
-            return None
-        fields = meta["response"]
-        shape = tuple(int(v) for v in meta["samples"]["shape"])
-        fingerprint, rate_hz, channels = key[1], key[2], key[3]
-        if (
-            len(shape) != 2
-            or shape[1] != channels
-            or shape[0] < 1
-            or int(fields["tail_frames"]) != shape[0] - 1
-            or fields["room_fingerprint"] != fingerprint
-            or float(fields["rate_hz"]) != rate_hz
-            or len(fields["channel_error_pct"]) != channels
-        ):
-            return None
-        ir = _read_samples(npy, shape, str(meta["samples"]["sha256"]))
+        with open(entry_path(name, folder), "rb") as f:
+            if f.readline(len(_MAGIC) + 1) != _MAGIC:
+                return None
+            line = f.readline(_MAX_META_BYTES)
+            if not line.endswith(b"\n"):
+                return None  # truncated, or longer than any metadata
+            meta = json.loads(line.decode("utf-8"))
+            if meta.get("key") != name or meta.get("identity") != json.loads(json.dumps(ident)):
+                return None
+            fields = meta["response"]
+            samples = meta["samples"]
+            shape = tuple(int(v) for v in samples["shape"])
+            fingerprint, rate_hz, channels = key[1], key[2], key[3]
+            if (
+                samples.get("dtype") != "<f8"
+                or len(shape) != 2
+                or shape[1] != channels
+                or shape[0] < 1
+                or int(fields["tail_frames"]) != shape[0] - 1
+                or fields["room_fingerprint"] != fingerprint
+                or float(fields["rate_hz"]) != rate_hz
+                or len(fields["channel_error_pct"]) != channels
+            ):
+                return None
+            ir = _read_samples(f, shape, str(samples["sha256"]))
         if ir is None:
             return None
         return synthesis.Response(
@@ -360,21 +364,25 @@ def _write_atomic(path, write):
 
 
 def _store(folder, name, ident, response):
-    """Write an entry (samples first, then the metadata that vouches for them); False if it cannot be."""
-    ir = np.ascontiguousarray(response.ir, dtype=np.float64)
-    checksum = hashlib.sha256(memoryview(ir).cast("B")).hexdigest()
+    """Write an entry (layout line, metadata line, samples) in one rename; False if it cannot be."""
+    ir = np.ascontiguousarray(response.ir, dtype="<f8")
+    data = memoryview(ir).cast("B")
     meta = {
         "key": name,
         "identity": ident,
-        "samples": {"shape": list(ir.shape), "dtype": "float64", "sha256": checksum},
+        "samples": {"shape": list(ir.shape), "dtype": "<f8", "sha256": hashlib.sha256(data).hexdigest()},
         "response": _response_fields(response),
     }
-    text = json.dumps(meta, indent=1) + "\n"  # NaN (an unmeasurable band) is written as NaN
-    npy, meta_path = entry_paths(name, folder)
+    # One line: json.dumps escapes newlines inside strings; NaN (an unmeasurable band) is written as NaN.
+    head = _MAGIC + json.dumps(meta, separators=(",", ":")).encode("utf-8") + b"\n"
+
+    def write(f):
+        f.write(head)
+        f.write(data)
+
     try:
         Path(folder).mkdir(parents=True, exist_ok=True)
-        _write_atomic(npy, lambda f: np.save(f, ir, allow_pickle=False))
-        _write_atomic(meta_path, lambda f: f.write(text.encode("utf-8")))
+        _write_atomic(entry_path(name, folder), write)
     except OSError:
         return False
     return True

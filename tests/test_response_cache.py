@@ -47,7 +47,15 @@ def fields(response):
 
 def entry(room=ROOM, **changes):
     args = {**ARGS, **changes}
-    return response_cache.entry_paths(response_cache.cache_key(room, **args))
+    return response_cache.entry_path(response_cache.cache_key(room, **args))
+
+
+def split(path):
+    """An entry file's three parts: the layout line, the metadata line, the samples."""
+    data = path.read_bytes()
+    first = data.index(b"\n") + 1
+    second = data.index(b"\n", first) + 1
+    return data[:first], data[first:second], data[second:]
 
 
 def other_files(folder):
@@ -86,9 +94,12 @@ def test_a_hit_is_synthesis_bit_for_bit_read_once(cache, monkeypatch):
     folder, calls = cache
     first = response_cache.cached_synthesize(ROOM, **ARGS)
     assert calls == [16000.0]
-    npy, meta = entry()
-    assert npy.is_file() and meta.is_file()
-    assert other_files(folder) == sorted([npy.name, meta.name])  # no temporary files left
+    path = entry()
+    assert other_files(folder) == [path.name]  # one file, no temporary files left
+    layout, meta, samples = split(path)
+    assert layout == b"render response cache entry 2\n"
+    assert json.loads(meta)["samples"]["shape"] == list(first.ir.shape)
+    assert samples == first.ir.astype("<f8").tobytes()
 
     synthesis.clear_cache()
     opened = []
@@ -101,7 +112,7 @@ def test_a_hit_is_synthesis_bit_for_bit_read_once(cache, monkeypatch):
     monkeypatch.setattr(response_cache, "open", counting_open, raising=False)
     again = response_cache.cached_synthesize(ROOM, **ARGS)
     assert calls == [16000.0]  # read, not synthesised
-    assert sorted(opened) == sorted([npy.name, meta.name])  # each file read once
+    assert opened == [path.name]  # the entry read once
     assert fields(again) == fields(first)
     assert again.ir.dtype == np.float64 and again.ir.flags.c_contiguous and not again.ir.flags.writeable
     # The hit joined the in-process cache: synthesize() now returns that very object.
@@ -112,10 +123,10 @@ def test_a_hit_is_synthesis_bit_for_bit_read_once(cache, monkeypatch):
 def test_the_in_process_cache_comes_first_and_fills_the_disk(cache):
     folder, calls = cache
     direct = synthesis.synthesize(ROOM, **ARGS)  # synthesised before the disk cache was asked
-    assert not entry()[1].exists()
+    assert not entry().exists()
     assert response_cache.cached_synthesize(ROOM, **ARGS) is direct
     assert calls == [16000.0]
-    assert entry()[1].is_file()  # stored for the next process
+    assert entry().is_file()  # stored for the next process
     synthesis.clear_cache()
     assert fields(response_cache.cached_synthesize(ROOM, **ARGS)) == fields(direct)
     assert calls == [16000.0]
@@ -139,7 +150,7 @@ def test_any_other_request_misses(cache, room, changes):
     assert len(calls) == 2  # synthesised, not taken from the first entry
     assert response_cache.cache_key(room, **{**ARGS, **changes}) != response_cache.cache_key(ROOM, **ARGS)
     assert fields(other) != fields(base)
-    assert len(other_files(folder)) == 4
+    assert len(other_files(folder)) == 2
 
 
 def test_bad_arguments_raise_like_synthesize(cache):
@@ -152,64 +163,77 @@ def test_bad_arguments_raise_like_synthesize(cache):
 # --------------------------------------------------------------------------- damage
 
 
-def _truncate_npy(npy, meta):
-    npy.write_bytes(npy.read_bytes()[:-100])
+def _truncate_samples(path):
+    path.write_bytes(path.read_bytes()[:-100])
 
 
-def _flip_a_sample(npy, meta):
-    data = bytearray(npy.read_bytes())
-    data[-3] ^= 0x01  # a valid .npy with other samples: only the checksum can tell
-    npy.write_bytes(bytes(data))
+def _flip_a_sample(path):
+    data = bytearray(path.read_bytes())
+    data[-3] ^= 0x01  # a well-formed entry with other samples: only the checksum can tell
+    path.write_bytes(bytes(data))
 
 
-def _npy_garbage(npy, meta):
-    npy.write_bytes(b"not a numpy file at all")
+def _garbage(path):
+    path.write_bytes(b"not a cache entry at all")
 
 
-def _npy_longer(npy, meta):
-    npy.write_bytes(npy.read_bytes() + b"\0" * 16)
+def _longer(path):
+    path.write_bytes(path.read_bytes() + b"\0" * 16)
 
 
-def _npy_missing(npy, meta):
-    npy.unlink()
+def _missing(path):
+    path.unlink()
 
 
-def _json_garbage(npy, meta):
-    meta.write_bytes(b"{ this is not json")
+def _other_layout(path):
+    layout, meta, samples = split(path)
+    path.write_bytes(layout.replace(b"entry 2", b"entry 3") + meta + samples)
 
 
-def _json_truncated(npy, meta):
-    meta.write_bytes(meta.read_bytes()[:50])
+def _meta_garbage(path):
+    layout, meta, samples = split(path)
+    path.write_bytes(layout + b"{ this is not json\n" + samples)
 
 
-def _json_missing(npy, meta):
-    meta.unlink()
+def _meta_truncated(path):
+    layout, meta, samples = split(path)
+    path.write_bytes(layout + meta[:50])
 
 
-def _json_of_another_request(npy, meta):
-    # Another (valid) entry's files copied over this one: the key inside does not match.
-    other_npy, other_meta = entry(tail_floor_db=-60.0)
+def _meta_without_end_of_line(path):
+    layout, meta, samples = split(path)
+    path.write_bytes(layout + meta[:-1])
+
+
+def _entry_of_another_request(path):
+    # Another (valid) entry copied over this one: the key inside does not match.
     response_cache.cached_synthesize(ROOM, **{**ARGS, "tail_floor_db": -60.0})
-    meta.write_bytes(other_meta.read_bytes())
-    npy.write_bytes(other_npy.read_bytes())
+    path.write_bytes(entry(tail_floor_db=-60.0).read_bytes())
 
 
-def _json_wrong_fields(npy, meta):
-    data = json.loads(meta.read_text())
+def _wrong_fields(path):
+    layout, meta, samples = split(path)
+    data = json.loads(meta)
     data["response"]["tail_frames"] += 1
-    meta.write_text(json.dumps(data))
+    path.write_bytes(layout + json.dumps(data).encode() + b"\n" + samples)
+
+
+def _wrong_dtype(path):
+    layout, meta, samples = split(path)
+    data = json.loads(meta)
+    data["samples"]["dtype"] = ">f8"
+    path.write_bytes(layout + json.dumps(data).encode() + b"\n" + samples)
 
 
 @pytest.mark.parametrize(
     "damage",
-    [_truncate_npy, _flip_a_sample, _npy_garbage, _npy_longer, _npy_missing, _json_garbage, _json_truncated,
-     _json_missing, _json_of_another_request, _json_wrong_fields],
+    [_truncate_samples, _flip_a_sample, _garbage, _longer, _missing, _other_layout, _meta_garbage,
+     _meta_truncated, _meta_without_end_of_line, _entry_of_another_request, _wrong_fields, _wrong_dtype],
 )
 def test_a_damaged_entry_is_ignored_and_rewritten(cache, damage):
     folder, calls = cache
     good = response_cache.cached_synthesize(ROOM, **ARGS)
-    npy, meta = entry()
-    damage(npy, meta)
+    damage(entry())
     synthesis.clear_cache()
     count = len(calls)
     again = response_cache.cached_synthesize(ROOM, **ARGS)
@@ -251,7 +275,7 @@ def test_an_unwritable_folder_only_means_nothing_is_stored(cache, monkeypatch, m
     got = response_cache.cached_synthesize(ROOM, **ARGS)
     assert fields(got) == expected
     assert len(calls) == 2
-    assert not [p for p in folder.parent.rglob("*") if p.suffix in (".npy", ".json", ".part")]
+    assert not [p for p in folder.parent.rglob("*") if p.suffix in (".response", ".part")]
 
 
 def test_a_read_only_folder_with_an_entry_is_read(cache, monkeypatch):
@@ -269,12 +293,12 @@ def test_off_disables_the_cache(cache, tmp_path, monkeypatch):
     monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))
     monkeypatch.setenv("HOME", str(tmp_path / "home"))
     first = response_cache.cached_synthesize(ROOM, **ARGS)
-    assert response_cache.entry_paths("0" * 64) is None
+    assert response_cache.entry_path("0" * 64) is None
     synthesis.clear_cache()
     second = response_cache.cached_synthesize(ROOM, **ARGS)
     assert len(calls) == 2  # nothing read back
     assert fields(first) == fields(second)
-    assert not any(tmp_path.rglob("*.npy")) and not any(tmp_path.rglob("*.json"))
+    assert not any(tmp_path.rglob("*.response"))
 
 
 # --------------------------------------------------------------------------- concurrency
@@ -305,10 +329,10 @@ WRITER = textwrap.dedent(
 @pytest.mark.parametrize("variants", [(0, 0), (0, 1)], ids=["same-bits", "other-bits"])
 def test_concurrent_writers_leave_a_valid_entry_and_readers_see_whole_ones(cache, variants):
     # Two processes store the same entry over and over while this one reads it (our choice of checks,
-    # for the atomic rename plus checksum).  Same bits: once an entry is whole, every read is a hit
-    # (a torn file would be a miss).  Other bits in one writer, as a machine whose arithmetic differs
-    # in the last bits would give: a read may miss when the two files come from different writers,
-    # but a hit is always one writer's samples.  Either way the entry is valid at the end.
+    # for the atomic rename of one file plus checksum).  Once an entry exists, every read is a hit (a
+    # torn file, or one writer's metadata with another's samples, would be a miss), and a hit is one
+    # writer's samples whole.  Other bits in one writer stand for a machine whose arithmetic differs in
+    # the last bits.  Either way the entry left at the end is valid.
     folder, calls = cache
     reference = synthesis.synthesize(ROOM, **ARGS)
     allowed = {reference.ir.tobytes(), (reference.ir * (1.0 + 2.0 ** -52)).tobytes()}
@@ -338,5 +362,4 @@ def test_concurrent_writers_leave_a_valid_entry_and_readers_see_whole_ones(cache
     assert final is not None and final.ir.tobytes() in allowed
     assert not [n for n in other_files(folder) if n.endswith(".part")]
     assert hits > 0  # the reader did read while the entry was being replaced
-    if variants == (0, 0):
-        assert misses_after_a_hit == 0
+    assert misses_after_a_hit == 0
