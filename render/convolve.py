@@ -15,6 +15,8 @@ Each transform of size ``K`` takes the previous ``N - 1`` input frames and
 Output frame 0 belongs to input frame 0: concatenating every output of
 :func:`convolve_block` and then :func:`flush` gives exactly the full linear
 convolution, ``L + N - 1`` frames long, with no added latency.
+:func:`flush_blocks` gives the same last frames one transform at a time, so a
+stream's end needs no more memory than any block before it.
 
 >>> import numpy as np
 >>> ir = np.array([[1.0], [0.5], [0.25]])
@@ -51,6 +53,7 @@ __all__ = [
     "initial_state",
     "convolve_block",
     "flush",
+    "flush_blocks",
 ]
 
 #: Cost of one real FFT per ``K·log2 K`` relative to one complex product per
@@ -442,6 +445,65 @@ def convolve_block(block, state, *, kernel):
     return np.ascontiguousarray(y.T), new_state
 
 
+def _frames_still_due(state, kernel, tail_frames):
+    """Output frames after ``state.frames_out`` up to the input's end plus ``tail_frames`` (validated)."""
+    _check_state(state, kernel)
+    n1 = kernel.ir_frames - 1
+    if tail_frames is None:
+        tail = n1
+    elif _is_int(tail_frames) and 0 <= tail_frames <= n1:
+        tail = int(tail_frames)
+    else:
+        raise ParameterError(f"tail_frames = {tail_frames!r}: must be an integer from 0 to ir_frames - 1 = {n1}")
+    return state.frames_in + tail - state.frames_out
+
+
+def flush_blocks(state, *, kernel, tail_frames=None):
+    """The remaining output after the last block, one transform's worth at a time.
+
+    Feeds zeros through :func:`convolve_block`: the pending input padded to
+    one block, then whole blocks of silence, so each step allocates what a
+    block of the stream did, whatever the pending length (a single
+    :func:`flush` of a 2.5 s response's tail and a nearly full pending block
+    takes two transforms' worth at once).  The pieces concatenated are what
+    :func:`flush` returns, bit for bit.
+
+    Parameters
+    ----------
+    state : ConvolverState
+        After the last :func:`convolve_block` call.
+    kernel : Kernel
+    tail_frames : int, optional
+        As for :func:`flush`: ``0`` to ``ir_frames - 1``, default ``ir_frames - 1``.
+
+    Returns
+    -------
+    iterator of numpy.ndarray
+        float64 pieces of shape ``(frames, state.out_channels)``, each of
+        ``1`` to ``kernel.block_frames`` frames, ``L + tail_frames -
+        frames_out`` frames in all (no pieces when that is 0).
+
+    Raises
+    ------
+    ParameterError
+        At the call (not on iteration) for a state of another kernel or a
+        ``tail_frames`` out of range.
+    """
+    need = _frames_still_due(state, kernel, tail_frames)
+    return _flush_pieces(state, kernel, need)
+
+
+def _flush_pieces(state, kernel, need):
+    b = kernel.block_frames
+    pad = np.zeros((b - state.pending_frames, state.channels))
+    while need > 0:
+        out, state = convolve_block(pad, state, kernel=kernel)  # exactly one transform: b frames out
+        if pad.shape[0] != b:
+            pad = np.zeros((b, state.channels))
+        yield out if need >= out.shape[0] else out[:need]
+        need -= out.shape[0]
+
+
 def flush(state, *, kernel, tail_frames=None):
     """The remaining output after the last block: pending input and the tail.
 
@@ -460,22 +522,10 @@ def flush(state, *, kernel, tail_frames=None):
     -------
     numpy.ndarray
         float64, shape ``(frames, state.out_channels)``: the last
-        ``L + tail_frames - frames_out`` output frames.
+        ``L + tail_frames - frames_out`` output frames; :func:`flush_blocks`
+        gives them in pieces.
     """
-    _check_state(state, kernel)
-    n1 = kernel.ir_frames - 1
-    if tail_frames is None:
-        tail = n1
-    elif _is_int(tail_frames) and 0 <= tail_frames <= n1:
-        tail = int(tail_frames)
-    else:
-        raise ParameterError(f"tail_frames = {tail_frames!r}: must be an integer from 0 to ir_frames - 1 = {n1}")
-    need = state.frames_in + tail - state.frames_out
-    if need == 0:
+    pieces = list(flush_blocks(state, kernel=kernel, tail_frames=tail_frames))
+    if not pieces:
         return np.empty((0, state.out_channels))
-    b = kernel.block_frames
-    nseg = -(-need // b)
-    zeros = np.zeros((state.channels, nseg * b - state.pending_frames))
-    x = np.concatenate((state.history,) + state.pending + (zeros,), axis=1)
-    y = _transform(x, nseg, kernel, state.out_channels)
-    return np.ascontiguousarray(y[:, :need].T)
+    return np.ascontiguousarray(np.concatenate(pieces))

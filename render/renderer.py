@@ -224,10 +224,11 @@ def _convolved(task, kernel, check=None):
         wet, state = convolve.convolve_block(block, state, kernel=kernel)
         if wet.shape[0]:
             yield pair(wet)
+        del block, wet  # the last (partial) block lives on in the queue and the state: no third copy
     if state.frames_in != total_in:
         raise AudioInputError(f"{task.key}: read {state.frames_in} frames, the file's header says {total_in}")
-    last = convolve.flush(state, kernel=kernel, tail_frames=task.tail_frames if task.tail == "extend" else 0)
-    if last.shape[0]:
+    tail_frames = task.tail_frames if task.tail == "extend" else 0
+    for last in convolve.flush_blocks(state, kernel=kernel, tail_frames=tail_frames):
         yield pair(last)
 
 

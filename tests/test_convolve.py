@@ -16,6 +16,7 @@ from render.convolve import (
     convolve_block,
     fft_cost_per_frame,
     flush,
+    flush_blocks,
     initial_state,
     output_channels,
     prepare_kernel,
@@ -264,6 +265,44 @@ def test_bad_tail_frames(tail_frames):
     kernel = prepare_kernel(np.ones((20, 1)), fft_size=64)
     with pytest.raises(ParameterError, match=r"tail_frames = .*: must be an integer from 0 to ir_frames - 1 = 19"):
         flush(initial_state(kernel, channels=1), kernel=kernel, tail_frames=tail_frames)
+    with pytest.raises(ParameterError, match=r"tail_frames = .*: must be an integer from 0 to ir_frames - 1 = 19"):
+        flush_blocks(initial_state(kernel, channels=1), kernel=kernel, tail_frames=tail_frames)  # at the call
+
+
+# (pending frames left by the stream, as a fraction of a block; tail_frames or None for the whole tail)
+FLUSH_CASES = [(0.0, None), (0.02, None), (0.5, 7), (0.98, None), (0.98, 0), (0.0, 0), (1 / 3, 150)]
+
+
+@pytest.mark.parametrize("channels, ir_channels", [(1, 1), (2, 2), (1, 2)])
+@pytest.mark.parametrize("pending, tail_frames", FLUSH_CASES)
+def test_flush_blocks_are_flush_in_pieces_of_at_most_one_block(channels, ir_channels, pending, tail_frames):
+    # Our own consistency rule: the pieces concatenated equal flush() bit for bit, each holds 1 to B frames,
+    # and stream + pieces is the full linear convolution (scipy.signal.fftconvolve as the reference).
+    rng = np.random.default_rng(41)
+    h = _ir(rng, 200, ir_channels)
+    kernel = prepare_kernel(h, fft_size=512)
+    b = kernel.block_frames
+    x = _signal(rng, 4 * b + int(round(pending * b)), channels)
+    state = initial_state(kernel, channels=channels)
+    outs = []
+    for start in range(0, len(x), b):
+        out, state = convolve_block(x[start : start + b], state, kernel=kernel)
+        outs.append(out)
+    assert state.pending_frames == len(x) % b
+    pieces = list(flush_blocks(state, kernel=kernel, tail_frames=tail_frames))
+    whole = flush(state, kernel=kernel, tail_frames=tail_frames)
+    tail = h.shape[0] - 1 if tail_frames is None else tail_frames
+    assert sum(p.shape[0] for p in pieces) == whole.shape[0] == state.pending_frames + tail
+    assert all(1 <= p.shape[0] <= b and p.shape[1] == output_channels(channels, ir_channels=ir_channels) for p in pieces)
+    assert all(p.dtype == np.float64 for p in pieces)
+    if pieces:
+        assert np.concatenate(pieces).tobytes() == whole.tobytes()
+    else:
+        assert whole.shape == (0, output_channels(channels, ir_channels=ir_channels))
+    got = np.concatenate(outs + pieces)
+    ref = _reference(x, h)[: len(x) + tail]
+    assert got.shape == ref.shape
+    np.testing.assert_allclose(got, ref, rtol=0, atol=TOL)
 
 
 def _five_smooth(lo, hi):
