@@ -470,11 +470,9 @@ def flush_blocks(state, *, kernel, tail_frames=None):
 
     Parameters
     ----------
-    state : ConvolverState
-        After the last :func:`convolve_block` call.
-    kernel : Kernel
-    tail_frames : int, optional
-        As for :func:`flush`: ``0`` to ``ir_frames - 1``, default ``ir_frames - 1``.
+    state, kernel, tail_frames
+        As for :func:`flush` (``tail_frames``: ``0`` to ``ir_frames - 1``,
+        default ``ir_frames - 1``).
 
     Returns
     -------
