@@ -162,7 +162,6 @@ class _SourceCheck:
         self.frames = 0
         self.total = np.zeros(task.info.channels)
         self.full_scale = 0
-        self._ones = np.ones(0)
 
     def __call__(self, block):
         if block.shape[0]:
@@ -173,11 +172,10 @@ class _SourceCheck:
                                       "expected finite audio")
             if max(top, -bottom) >= _FULL_SCALE:
                 self.full_scale += int(np.count_nonzero(np.abs(block) >= _FULL_SCALE))
-            if self._ones.shape[0] < block.shape[0]:
-                self._ones = np.ones(block.shape[0])
-            # Column sums as a product with ones: 50x faster than sum(axis=0) over (frames, 2), and the DC
-            # note needs no more than a few digits.
-            self.total += self._ones[: block.shape[0]] @ block
+            # Column by column: 30x faster than sum(axis=0) over (frames, 2), with numpy's pairwise sum.
+            # (Not a product with ones: BLAS would start threads that spin on the other cores.)
+            for c in range(block.shape[1]):
+                self.total[c] += block[:, c].sum()
         self.frames += block.shape[0]
         return block
 
