@@ -463,9 +463,9 @@ def flush_blocks(state, *, kernel, tail_frames=None):
 
     Feeds zeros through :func:`convolve_block`: the pending input padded to
     one block, then whole blocks of silence, so each step allocates what a
-    block of the stream did, whatever the pending length (a single
-    :func:`flush` of a 2.5 s response's tail and a nearly full pending block
-    takes two transforms' worth at once).  The pieces concatenated are what
+    block of the stream did, whatever the pending length (transforming a
+    nearly full pending block and a 2.5 s response's tail in one go took two
+    transforms' worth at once).  The pieces concatenated are what
     :func:`flush` returns, bit for bit.
 
     Parameters
@@ -492,12 +492,14 @@ def flush_blocks(state, *, kernel, tail_frames=None):
 
 
 def _flush_pieces(state, kernel, need):
+    if need <= 0:
+        return
     b = kernel.block_frames
-    pad = np.zeros((b - state.pending_frames, state.channels))
+    pad = np.zeros((b - state.pending_frames, state.channels))  # the pending input's block filled up
     while need > 0:
         out, state = convolve_block(pad, state, kernel=kernel)  # exactly one transform: b frames out
         if pad.shape[0] != b:
-            pad = np.zeros((b, state.channels))
+            pad = np.zeros((b, state.channels))  # then whole blocks of silence, one array reused
         yield out if need >= out.shape[0] else out[:need]
         need -= out.shape[0]
 
