@@ -14,6 +14,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import concurrent.futures as cf
 import io
 import multiprocessing
@@ -400,7 +401,7 @@ class _DaskExecutor:
         else:
             try:
                 self.client = Client(address, timeout=30)
-            except (OSError, TimeoutError) as e:
+            except (OSError, TimeoutError, asyncio.TimeoutError) as e:
                 raise ParameterError(f"--scheduler = {address!r}: cannot connect ({e})") from None
         self.executor = self.client.get_executor(pure=False, retries=2)
 
@@ -424,7 +425,7 @@ class _DaskExecutor:
                 cluster, self.cluster = self.cluster, None
                 try:
                     cluster.close(timeout=_CLOSE_TIMEOUT_S)
-                except TimeoutError:
+                except (TimeoutError, asyncio.TimeoutError):  # two classes before Python 3.11
                     pass  # the results are in; the workers end with this process (daemons)
         finally:
             if self.config is not None:
