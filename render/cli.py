@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 
 from . import __version__
@@ -51,6 +52,17 @@ class _Parser(argparse.ArgumentParser):
     def error(self, message):  # one line, exit code 2, no usage dump
         self.exit(EXIT_USAGE, f"render: {message} (see 'render {self.prog.split()[-1]} --help')\n"
                   if " " in self.prog else f"render: {message} (see 'render --help')\n")
+
+
+def _non_negative(text):
+    """A number >= 0 (argparse type)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not value >= 0 or value == float("inf"):
+        raise argparse.ArgumentTypeError(f"{text!r}: expected a finite number >= 0")
+    return value
 
 
 def build_parser():
@@ -98,6 +110,13 @@ def build_parser():
 
     p = sub.add_parser("report", help="write report.html (and PNGs) for a rendered output folder")
     p.add_argument("output", metavar="OUTDIR", help="the job's output folder (with manifest.json)")
+
+    p = sub.add_parser("cache", help="show the response cache, or remove entries from it")
+    p.add_argument("--clear", action="store_true", help="remove every entry")
+    p.add_argument("--unused-days", type=_non_negative, metavar="D", help="remove the entries not used for D days")
+    p.add_argument("--max-mb", type=_non_negative, metavar="MB",
+                   help="remove the least recently used entries beyond MB megabytes")
+    p.add_argument("--json", action="store_true", help="print JSON instead of text")
 
     p = sub.add_parser("bench", help="measure speed and memory on material generated here")
     p.add_argument("--minutes", type=float, default=None, metavar="M", help="length of the main test file")
@@ -204,6 +223,47 @@ def _cmd_bench(args):
     return EXIT_OK
 
 
+def _cmd_cache(args):
+    import time
+
+    from . import response_cache
+
+    folder = response_cache.cache_dir()
+    out = {"folder": None if folder is None else str(folder)}
+    if folder is None:
+        if args.json:
+            print(json.dumps({**out, "entries": 0, "bytes": 0}))
+        else:
+            print(f"render: the response cache is off ({response_cache.ENV_VAR}={os.environ.get(response_cache.ENV_VAR)!r})")
+        return EXIT_OK
+    if args.clear or args.unused_days is not None or args.max_mb is not None:
+        max_bytes = None if args.max_mb is None else int(args.max_mb * 1e6)
+        out["pruned"] = response_cache.prune(folder, unused_days=args.unused_days, max_bytes=max_bytes,
+                                             everything=args.clear)
+    entries = [e for e in response_cache.cache_entries(folder) if e.kind == "entry"]
+    out["entries"] = len(entries)
+    out["bytes"] = sum(e.size_bytes for e in entries)
+    out["last_used"] = max((e.used for e in entries), default=None)
+    out["first_used"] = min((e.used for e in entries), default=None)
+    if args.json:
+        print(json.dumps(out))
+        return EXIT_OK if not out.get("pruned", {}).get("failed") else EXIT_OUTPUT
+    pruned = out.get("pruned")
+    if pruned is not None:
+        print(f"removed {pruned['removed']} file(s), {pruned['removed_bytes'] / 1e6:.1f} MB")
+        for path in pruned["failed"]:
+            print(f"render: could not remove {path}", file=sys.stderr)
+
+    def day(t):
+        return time.strftime("%Y-%m-%d", time.localtime(t))
+
+    line = f"{folder}: {out['entries']} response(s), {out['bytes'] / 1e6:.1f} MB"
+    if entries:
+        line += f", used between {day(out['first_used'])} and {day(out['last_used'])}"
+    print(line)
+    return EXIT_OK if not (pruned and pruned["failed"]) else EXIT_OUTPUT
+
+
 def _cmd_check(args):
     from .job import load_job
     from .plan import plan_job
@@ -304,6 +364,7 @@ _COMMANDS = {
     "rooms": _cmd_rooms,
     "ir": _cmd_ir,
     "analyze": _cmd_analyze,
+    "cache": _cmd_cache,
 }
 
 

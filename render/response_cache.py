@@ -41,10 +41,13 @@ Machines whose arithmetic differs in the last bits (another processor's
 vector code in numpy or the BLAS) may share one folder: whichever entry was
 written last is served to all of them, which keeps a farm's outputs alike.
 
-Nothing is ever deleted: entries are about the size of the response (1-10 MB
-at 48 kHz), the folder may be removed at any time, and so may a ``.part`` file
-a killed writer left behind (or the ``.npy`` and ``.json`` pairs of layout 1,
-which no key names any more).
+Housekeeping: nothing is deleted on its own.  Entries are about the size of
+the response (1-10 MB at 48 kHz); a hit sets the entry's modification time, so
+:func:`prune` (``render cache``) can drop the entries not used for a while or
+the least recently used ones beyond a size, and the folder may be removed at
+any time.  Only files named as this module names them are ever removed: entries,
+``.part`` files a killed writer left behind (after an hour), and the ``.npy``
+and ``.json`` pairs of layout 1, which no key names any more.
 
 Example (a temporary cache folder):
 
@@ -66,16 +69,21 @@ import hashlib
 import inspect
 import json
 import os
+import re
 import secrets
 import socket
+import time
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import scipy
 
 from . import synthesis
+from .errors import ParameterError
 
-__all__ = ["cache_dir", "cache_key", "entry_path", "cached_synthesize", "ENV_VAR", "FORMAT_VERSION"]
+__all__ = ["cache_dir", "cache_key", "entry_path", "cached_synthesize", "cache_entries", "prune", "CacheEntry",
+           "ENV_VAR", "FORMAT_VERSION"]
 
 #: Environment variable naming the cache folder (``off`` or empty: no cache).
 ENV_VAR = "RENDER_CACHE_DIR"
@@ -226,6 +234,7 @@ def cached_synthesize(room, *, rate_hz, channels, tail_floor_db):
         return hit
     response = _load(folder, name, ident, key)
     if response is not None:
+        _touch(entry_path(name, folder))
         synthesis._cache_put(key, response)
         return response
     response = _synthesize(room, rate_hz, channels, tail_floor_db)
@@ -235,6 +244,14 @@ def cached_synthesize(room, *, rate_hz, channels, tail_floor_db):
 
 def _synthesize(room, rate_hz, channels, tail_floor_db):
     return synthesis.synthesize(room, rate_hz=rate_hz, channels=channels, tail_floor_db=tail_floor_db)
+
+
+def _touch(path):
+    """Mark an entry as used now (its modification time), for :func:`prune`; never raises."""
+    try:
+        os.utime(path)
+    except OSError:
+        pass  # a read-only folder: the entry keeps its old time
 
 
 def _exists(path):
@@ -386,3 +403,143 @@ def _store(folder, name, ident, response):
     except OSError:
         return False
     return True
+
+
+# ----------------------------------------------------------------------------- housekeeping
+
+#: File names this module writes, and nothing else is ever removed: entries, writers' temporaries, and
+#: the two files of a layout-1 entry.
+_ENTRY_NAME = re.compile(r"^[0-9a-f]{64}\.response$")
+_PART_NAME = re.compile(r"^\.[0-9a-f]{64}\.(response|npy|json)\..+\.part$")
+_OLD_LAYOUT_NAME = re.compile(r"^[0-9a-f]{64}\.(npy|json)$")
+#: A ``.part`` file younger than this may belong to a writer still at work, s.
+_PART_GRACE_S = 3600.0
+
+
+@dataclass(frozen=True)
+class CacheEntry:
+    """One file of the cache folder that :func:`prune` may remove.
+
+    Attributes
+    ----------
+    path : pathlib.Path
+    size_bytes : int
+    used : float
+        Last use (a hit or the store), seconds since the epoch (the file's modification time).
+    kind : str
+        ``'entry'``, ``'part'`` (a writer's temporary) or ``'old-layout'``.
+    """
+
+    path: Path
+    size_bytes: int
+    used: float
+    kind: str
+
+
+def cache_entries(folder=None):
+    """The files of the cache folder that belong to it, most recently used first.
+
+    Parameters
+    ----------
+    folder : str or os.PathLike, optional
+        Default :func:`cache_dir`.
+
+    Returns
+    -------
+    list of CacheEntry
+        Empty when the cache is off or the folder does not exist; other files
+        in the folder are not listed.
+    """
+    folder = cache_dir() if folder is None else Path(folder)
+    if folder is None:
+        return []
+    found = []
+    try:
+        names = os.listdir(folder)
+    except OSError:
+        return []
+    for name in names:
+        if _ENTRY_NAME.match(name):
+            kind = "entry"
+        elif _PART_NAME.match(name):
+            kind = "part"
+        elif _OLD_LAYOUT_NAME.match(name):
+            kind = "old-layout"
+        else:
+            continue
+        try:
+            st = os.stat(folder / name)
+        except OSError:
+            continue  # removed meanwhile
+        found.append(CacheEntry(path=folder / name, size_bytes=st.st_size, used=st.st_mtime, kind=kind))
+    found.sort(key=lambda e: (-e.used, e.path.name))
+    return found
+
+
+def prune(folder=None, *, unused_days=None, max_bytes=None, everything=False, now=None):
+    """Remove cache files: all of them, those unused for a while, or the oldest beyond a size.
+
+    Entries go when ``everything``; or when not used for ``unused_days``; or,
+    least recently used first, while the entries left take more than
+    ``max_bytes``.  Files of layout 1 always go (no key names them), and so do
+    ``.part`` files older than an hour (younger ones may belong to a writer at
+    work).  A process reading an entry at that moment keeps its open file;
+    one that misses synthesises the response again.
+
+    Parameters
+    ----------
+    folder : str or os.PathLike, optional
+        Default :func:`cache_dir`.
+    unused_days : float, optional
+        >= 0.
+    max_bytes : int, optional
+        >= 0.
+    everything : bool
+    now : float, optional
+        The present, seconds since the epoch (default: the clock).
+
+    Returns
+    -------
+    dict
+        ``removed`` and ``removed_bytes``; ``kept`` and ``kept_bytes`` (entries
+        and ``.part`` files left); ``failed`` (paths that could not be removed).
+
+    Raises
+    ------
+    ParameterError
+        ``unused_days`` or ``max_bytes`` negative or not a number.
+    """
+    for name, value in (("unused_days", unused_days), ("max_bytes", max_bytes)):
+        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float)) or not value >= 0):
+            raise ParameterError(f"{name} = {value!r}: expected a number >= 0")
+    now = time.time() if now is None else float(now)
+    drop, keep = [], []
+    for e in cache_entries(folder):
+        if e.kind == "old-layout" or (e.kind == "part" and now - e.used > _PART_GRACE_S):
+            drop.append(e)
+        elif e.kind == "entry" and (everything or (unused_days is not None and now - e.used > unused_days * 86400.0)):
+            drop.append(e)
+        else:
+            keep.append(e)
+    if max_bytes is not None:
+        total = sum(e.size_bytes for e in keep)
+        for e in sorted((e for e in keep if e.kind == "entry"), key=lambda e: (e.used, e.path.name)):
+            if total <= max_bytes:
+                break
+            drop.append(e)
+            keep.remove(e)
+            total -= e.size_bytes
+    removed, removed_bytes, failed = 0, 0, []
+    for e in drop:
+        try:
+            os.unlink(e.path)
+        except FileNotFoundError:
+            continue  # another process pruned it first
+        except OSError:
+            failed.append(str(e.path))
+            keep.append(e)
+            continue
+        removed += 1
+        removed_bytes += e.size_bytes
+    return {"removed": removed, "removed_bytes": removed_bytes, "kept": len(keep),
+            "kept_bytes": sum(e.size_bytes for e in keep), "failed": failed}

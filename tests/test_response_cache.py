@@ -363,3 +363,121 @@ def test_concurrent_writers_leave_a_valid_entry_and_readers_see_whole_ones(cache
     assert not [n for n in other_files(folder) if n.endswith(".part")]
     assert hits > 0  # the reader did read while the entry was being replaced
     assert misses_after_a_hit == 0
+
+
+# --------------------------------------------------------------------------- housekeeping
+
+DAY_S = 86400.0
+
+
+def _fake_entry(folder, index, *, size, used):
+    """A file named as an entry (its contents do not matter to housekeeping), last used at ``used``."""
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / f"{index:064x}.response"
+    path.write_bytes(b"\0" * size)
+    os.utime(path, (used, used))
+    return path
+
+
+def test_a_hit_marks_the_entry_as_used(cache):
+    folder, calls = cache
+    response_cache.cached_synthesize(ROOM, **ARGS)
+    path = entry()
+    os.utime(path, (1e9, 1e9))  # 2001
+    synthesis.clear_cache()
+    response_cache.cached_synthesize(ROOM, **ARGS)
+    assert len(calls) == 1  # a hit
+    assert path.stat().st_mtime > 1e9 + 10 * 365 * DAY_S
+
+
+def test_entries_are_listed_most_recent_first_and_other_files_are_not(tmp_path):
+    folder = tmp_path / "cache"
+    old = _fake_entry(folder, 1, size=10, used=1000.0)
+    new = _fake_entry(folder, 2, size=20, used=2000.0)
+    (folder / "notes.txt").write_text("the user's own file")
+    (folder / "ABC.response").write_text("not a key")
+    listed = response_cache.cache_entries(folder)
+    assert [(e.path, e.size_bytes, e.used, e.kind) for e in listed] == [(new, 20, 2000.0, "entry"),
+                                                                        (old, 10, 1000.0, "entry")]
+    assert response_cache.cache_entries(tmp_path / "missing") == []
+
+
+@pytest.mark.parametrize(
+    "kwargs, left",
+    [
+        ({"everything": True}, []),
+        ({"unused_days": 10}, [0, 1]),  # used 1 and 5 days ago stay, 20 and 40 days ago go
+        ({"unused_days": 0}, []),
+        ({"max_bytes": 350}, [0, 1, 2]),  # 100 + 100 + 100 <= 350: the least recently used goes
+        ({"max_bytes": 100}, [0]),
+        ({"max_bytes": 0}, []),
+        ({"unused_days": 30, "max_bytes": 150}, [0]),
+        ({}, [0, 1, 2, 3]),
+    ],
+)
+def test_prune_removes_what_it_is_asked_to_least_recently_used_first(tmp_path, kwargs, left):
+    folder = tmp_path / "cache"
+    now = 100 * DAY_S
+    paths = [_fake_entry(folder, i, size=100, used=now - days * DAY_S) for i, days in enumerate([1, 5, 20, 40])]
+    (folder / "notes.txt").write_text("kept whatever happens")
+    result = response_cache.prune(folder, now=now, **kwargs)
+    assert sorted(p.name for p in folder.iterdir()) == sorted([paths[i].name for i in left] + ["notes.txt"])
+    assert result == {"removed": 4 - len(left), "removed_bytes": 100 * (4 - len(left)), "kept": len(left),
+                      "kept_bytes": 100 * len(left), "failed": []}
+
+
+def test_prune_drops_old_layout_files_and_stale_temporaries_only(tmp_path):
+    folder = tmp_path / "cache"
+    folder.mkdir()
+    now = 10 * DAY_S
+    key = "ab" * 32
+    stale = folder / f".{key}.response.host.123.0a0b0c0d0e0f.part"
+    fresh = folder / f".{key}.response.host.456.0a0b0c0d0e0f.part"
+    for path, age_s in [(folder / f"{key}.npy", DAY_S), (folder / f"{key}.json", DAY_S), (stale, 2 * 3600.0),
+                        (fresh, 60.0)]:
+        path.write_bytes(b"x")
+        os.utime(path, (now - age_s, now - age_s))
+    result = response_cache.prune(folder, now=now)
+    assert sorted(p.name for p in folder.iterdir()) == [fresh.name]  # a writer may still be at work on it
+    assert result["removed"] == 3 and result["kept"] == 1
+
+
+@pytest.mark.parametrize("bad", [{"unused_days": -1}, {"max_bytes": -5}, {"unused_days": "7"},
+                                 {"max_bytes": True}, {"unused_days": float("nan")}])
+def test_prune_refuses_bad_limits(tmp_path, bad):
+    with pytest.raises(ParameterError, match=r"expected a number >= 0"):
+        response_cache.prune(tmp_path, **bad)
+
+
+def test_a_pruned_entry_is_synthesised_again(cache):
+    folder, calls = cache
+    first = response_cache.cached_synthesize(ROOM, **ARGS)
+    assert response_cache.prune(everything=True)["removed"] == 1
+    synthesis.clear_cache()
+    assert fields(response_cache.cached_synthesize(ROOM, **ARGS)) == fields(first)
+    assert len(calls) == 2
+
+
+def test_the_cache_command_reports_and_prunes(cache, capsys):
+    from render.cli import main
+
+    folder, calls = cache
+    response_cache.cached_synthesize(ROOM, **ARGS)
+    size = entry().stat().st_size
+    assert main(["cache", "--json"]) == 0
+    shown = json.loads(capsys.readouterr().out)
+    assert shown["folder"] == str(folder) and shown["entries"] == 1 and shown["bytes"] == size
+    assert main(["cache", "--unused-days", "1"]) == 0  # used just now: kept
+    assert "removed 0 file(s)" in capsys.readouterr().out
+    assert main(["cache", "--clear"]) == 0
+    out = capsys.readouterr().out
+    assert "removed 1 file(s)" in out and "0 response(s), 0.0 MB" in out
+    assert not entry().exists()
+
+
+def test_the_cache_command_when_the_cache_is_off(monkeypatch, capsys):
+    from render.cli import main
+
+    monkeypatch.setenv("RENDER_CACHE_DIR", "off")
+    assert main(["cache", "--clear"]) == 0
+    assert "the response cache is off" in capsys.readouterr().out
