@@ -234,7 +234,9 @@ def _cmd_cache(args):
         if args.json:
             print(json.dumps({**out, "entries": 0, "bytes": 0}))
         else:
-            print(f"render: the response cache is off ({response_cache.ENV_VAR}={os.environ.get(response_cache.ENV_VAR)!r})")
+            value = os.environ.get(response_cache.ENV_VAR)
+            why = f"{response_cache.ENV_VAR}={value!r}" if value is not None else "no home folder to keep it in"
+            print(f"render: the response cache is off ({why})")
         return EXIT_OK
     if args.clear or args.unused_days is not None or args.max_mb is not None:
         max_bytes = None if args.max_mb is None else int(args.max_mb * 1e6)

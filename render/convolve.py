@@ -528,4 +528,4 @@ def flush(state, *, kernel, tail_frames=None):
     pieces = list(flush_blocks(state, kernel=kernel, tail_frames=tail_frames))
     if not pieces:
         return np.empty((0, state.out_channels))
-    return np.ascontiguousarray(np.concatenate(pieces))
+    return np.concatenate(pieces)  # a new C-contiguous array

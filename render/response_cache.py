@@ -45,9 +45,11 @@ Housekeeping: nothing is deleted on its own.  Entries are about the size of
 the response (1-10 MB at 48 kHz); a hit sets the entry's modification time, so
 :func:`prune` (``render cache``) can drop the entries not used for a while or
 the least recently used ones beyond a size, and the folder may be removed at
-any time.  Only files named as this module names them are ever removed: entries,
-``.part`` files a killed writer left behind (after an hour), and the ``.npy``
-and ``.json`` pairs of layout 1, which no key names any more.
+any time.  Only regular files named as this module names them are ever
+removed: entries, ``.part`` files a killed writer left behind (after an
+hour), and the ``.npy`` and ``.json`` files of layout 1, which no key of this
+version names.  A hit updates the time only where the reader may write the
+entry: in a folder shared by several users, another user's hits do not count.
 
 Example (a temporary cache folder):
 
@@ -69,11 +71,12 @@ import hashlib
 import inspect
 import json
 import os
+import dataclasses
 import re
 import secrets
 import socket
+import stat
 import time
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -246,10 +249,10 @@ def _synthesize(room, rate_hz, channels, tail_floor_db):
     return synthesis.synthesize(room, rate_hz=rate_hz, channels=channels, tail_floor_db=tail_floor_db)
 
 
-def _touch(path):
-    """Mark an entry as used now (its modification time), for :func:`prune`; never raises."""
+def _touch(path, when=None):
+    """Mark an entry as used now, or at ``when`` (its modification time), for :func:`prune`; never raises."""
     try:
-        os.utime(path)
+        os.utime(path, None if when is None else (when, when))
     except OSError:
         pass  # a read-only folder: the entry keeps its old time
 
@@ -416,7 +419,7 @@ _OLD_LAYOUT_NAME = re.compile(r"^[0-9a-f]{64}\.(npy|json)$")
 _PART_GRACE_S = 3600.0
 
 
-@dataclass(frozen=True)
+@dataclasses.dataclass(frozen=True)
 class CacheEntry:
     """One file of the cache folder that :func:`prune` may remove.
 
@@ -468,9 +471,11 @@ def cache_entries(folder=None):
         else:
             continue
         try:
-            st = os.stat(folder / name)
+            st = os.lstat(folder / name)
         except OSError:
             continue  # removed meanwhile
+        if not stat.S_ISREG(st.st_mode):
+            continue  # a folder or a link with such a name is not ours
         found.append(CacheEntry(path=folder / name, size_bytes=st.st_size, used=st.st_mtime, kind=kind))
     found.sort(key=lambda e: (-e.used, e.path.name))
     return found
@@ -479,12 +484,15 @@ def cache_entries(folder=None):
 def prune(folder=None, *, unused_days=None, max_bytes=None, everything=False, now=None):
     """Remove cache files: all of them, those unused for a while, or the oldest beyond a size.
 
-    Entries go when ``everything``; or when not used for ``unused_days``; or,
-    least recently used first, while the entries left take more than
-    ``max_bytes``.  Files of layout 1 always go (no key names them), and so do
-    ``.part`` files older than an hour (younger ones may belong to a writer at
-    work).  A process reading an entry at that moment keeps its open file;
-    one that misses synthesises the response again.
+    Entries go when ``everything``; or when not used for ``unused_days`` or
+    more; or, least recently used first, while the entries left take more than
+    ``max_bytes``.  Files of layout 1 follow the same rules (a machine not yet
+    upgraded may still use them).  ``.part`` files go once they are an hour
+    old (younger ones may belong to a writer at work) and do not count towards
+    ``max_bytes``.  A last use in the future (a clock ahead, on shared storage)
+    counts as now, and the file's time is set to now.  A process reading an
+    entry at that moment keeps its open file; one that misses synthesises the
+    response again.
 
     Parameters
     ----------
@@ -501,8 +509,9 @@ def prune(folder=None, *, unused_days=None, max_bytes=None, everything=False, no
     Returns
     -------
     dict
-        ``removed`` and ``removed_bytes``; ``kept`` and ``kept_bytes`` (entries
-        and ``.part`` files left); ``failed`` (paths that could not be removed).
+        ``removed`` and ``removed_bytes``; ``kept`` and ``kept_bytes`` (files
+        left, ``.part`` files included); ``failed`` (paths that could not be
+        removed).
 
     Raises
     ------
@@ -515,15 +524,19 @@ def prune(folder=None, *, unused_days=None, max_bytes=None, everything=False, no
     now = time.time() if now is None else float(now)
     drop, keep = [], []
     for e in cache_entries(folder):
-        if e.kind == "old-layout" or (e.kind == "part" and now - e.used > _PART_GRACE_S):
-            drop.append(e)
-        elif e.kind == "entry" and (everything or (unused_days is not None and now - e.used > unused_days * 86400.0)):
+        if e.used > now:  # a clock ahead (another machine's, on shared storage): used now, and so from now on
+            _touch(e.path, now)
+            e = dataclasses.replace(e, used=now)
+        age_s = now - e.used
+        if e.kind == "part":
+            (drop if age_s > _PART_GRACE_S else keep).append(e)
+        elif everything or (unused_days is not None and age_s >= unused_days * 86400.0):
             drop.append(e)
         else:
             keep.append(e)
     if max_bytes is not None:
-        total = sum(e.size_bytes for e in keep)
-        for e in sorted((e for e in keep if e.kind == "entry"), key=lambda e: (e.used, e.path.name)):
+        total = sum(e.size_bytes for e in keep if e.kind != "part")  # a writer's temporary is not removable yet
+        for e in sorted((e for e in keep if e.kind != "part"), key=lambda e: (e.used, e.path.name)):
             if total <= max_bytes:
                 break
             drop.append(e)

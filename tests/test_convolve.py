@@ -21,6 +21,7 @@ from render.convolve import (
     output_channels,
     prepare_kernel,
 )
+from render.convolve import _transform
 from render.errors import ParameterError
 
 #: Absolute tolerance against the reference, re full scale 1.0 (as the brief asks).
@@ -297,6 +298,12 @@ def test_flush_blocks_are_flush_in_pieces_of_at_most_one_block(channels, ir_chan
     assert all(p.dtype == np.float64 for p in pieces)
     if pieces:
         assert np.concatenate(pieces).tobytes() == whole.tobytes()
+        # ... and equal bit for bit to transforming the pending input and the tail in one go (the old flush).
+        nseg = -(-whole.shape[0] // b)
+        zeros = np.zeros((channels, nseg * b - state.pending_frames))
+        x_all = np.concatenate((state.history,) + state.pending + (zeros,), axis=1)
+        one_go = _transform(x_all, nseg, kernel, output_channels(channels, ir_channels=ir_channels))
+        assert one_go[:, : whole.shape[0]].T.tobytes() == whole.tobytes()
     else:
         assert whole.shape == (0, output_channels(channels, ir_channels=ir_channels))
     got = np.concatenate(outs + pieces)

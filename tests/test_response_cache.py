@@ -426,20 +426,70 @@ def test_prune_removes_what_it_is_asked_to_least_recently_used_first(tmp_path, k
                       "kept_bytes": 100 * len(left), "failed": []}
 
 
-def test_prune_drops_old_layout_files_and_stale_temporaries_only(tmp_path):
+def _leave_a_writers_temporary(folder, monkeypatch):
+    """A real temporary of _write_atomic, as a writer killed before its rename leaves it."""
+    with monkeypatch.context() as m:
+        m.setattr(response_cache.os, "replace", lambda src, dst: None)
+        assert response_cache._store(folder, "cd" * 32, {"format": 2}, synthesis.synthesize(ROOM, **ARGS))
+    (part,) = [p for p in folder.iterdir() if p.name.endswith(".part")]
+    return part
+
+
+@pytest.mark.parametrize("age_s, removed", [(60.0, False), (2 * 3600.0, True)])
+def test_a_writers_temporary_goes_once_an_hour_old(tmp_path, monkeypatch, age_s, removed):
+    folder = tmp_path / "cache"
+    part = _leave_a_writers_temporary(folder, monkeypatch)
+    now = part.stat().st_mtime + age_s
+    result = response_cache.prune(folder, now=now)
+    assert part.exists() is not removed
+    assert result["removed"] == int(removed)
+
+
+def test_a_writers_temporary_does_not_count_towards_the_size_limit(tmp_path, monkeypatch):
+    folder = tmp_path / "cache"
+    part = _leave_a_writers_temporary(folder, monkeypatch)  # tens of kB, fresh
+    now = part.stat().st_mtime + 1.0
+    entries = [_fake_entry(folder, i, size=100, used=now - 10 * i) for i in range(4)]
+    result = response_cache.prune(folder, max_bytes=250, now=now)
+    assert [p.exists() for p in entries] == [True, True, False, False]  # 200 B of entries left, not 0
+    assert part.exists() and result["removed"] == 2
+
+
+@pytest.mark.parametrize("kwargs, removed", [({}, []), ({"unused_days": 30}, []), ({"unused_days": 0.5}, ["npy", "json"]),
+                                             ({"everything": True}, ["npy", "json"])])
+def test_layout_1_files_follow_the_entries_rules(tmp_path, kwargs, removed):
+    # A machine not yet upgraded may still use them on a shared folder.
     folder = tmp_path / "cache"
     folder.mkdir()
     now = 10 * DAY_S
     key = "ab" * 32
-    stale = folder / f".{key}.response.host.123.0a0b0c0d0e0f.part"
-    fresh = folder / f".{key}.response.host.456.0a0b0c0d0e0f.part"
-    for path, age_s in [(folder / f"{key}.npy", DAY_S), (folder / f"{key}.json", DAY_S), (stale, 2 * 3600.0),
-                        (fresh, 60.0)]:
+    for suffix in ("npy", "json"):
+        path = folder / f"{key}.{suffix}"
         path.write_bytes(b"x")
-        os.utime(path, (now - age_s, now - age_s))
-    result = response_cache.prune(folder, now=now)
-    assert sorted(p.name for p in folder.iterdir()) == [fresh.name]  # a writer may still be at work on it
-    assert result["removed"] == 3 and result["kept"] == 1
+        os.utime(path, (now - DAY_S, now - DAY_S))
+    response_cache.prune(folder, now=now, **kwargs)
+    assert sorted(p.suffix[1:] for p in folder.iterdir()) == sorted({"npy", "json"} - set(removed))
+
+
+def test_a_last_use_in_the_future_counts_as_now(tmp_path):
+    folder = tmp_path / "cache"
+    now = 100 * DAY_S
+    ahead = _fake_entry(folder, 1, size=100, used=now + 3600.0)  # another machine's clock, an hour ahead
+    assert response_cache.prune(folder, unused_days=1, now=now)["removed"] == 0
+    assert ahead.stat().st_mtime == now  # ages from now on
+    assert response_cache.prune(folder, unused_days=1, now=now + 2 * DAY_S)["removed"] == 1
+
+
+def test_only_regular_files_are_cache_files(tmp_path):
+    folder = tmp_path / "cache"
+    (folder / f"{1:064x}.response").mkdir(parents=True)  # a folder with an entry's name
+    target = tmp_path / "precious.wav"
+    target.write_bytes(b"user data")
+    (folder / f"{2:064x}.response").symlink_to(target)
+    assert response_cache.cache_entries(folder) == []
+    assert response_cache.prune(folder, everything=True) == {"removed": 0, "removed_bytes": 0, "kept": 0,
+                                                              "kept_bytes": 0, "failed": []}
+    assert target.read_bytes() == b"user data"
 
 
 @pytest.mark.parametrize("bad", [{"unused_days": -1}, {"max_bytes": -5}, {"unused_days": "7"},
@@ -473,6 +523,22 @@ def test_the_cache_command_reports_and_prunes(cache, capsys):
     out = capsys.readouterr().out
     assert "removed 1 file(s)" in out and "0 response(s), 0.0 MB" in out
     assert not entry().exists()
+
+
+def test_the_cache_command_fails_when_an_entry_cannot_be_removed(cache, monkeypatch, capsys):
+    from render.cli import main
+
+    folder, calls = cache
+    response_cache.cached_synthesize(ROOM, **ARGS)
+
+    def refuse(path):
+        raise PermissionError(13, "Permission denied", str(path))
+
+    monkeypatch.setattr(response_cache.os, "unlink", refuse)
+    assert main(["cache", "--clear"]) == 5  # the exit code of an unwritable output
+    captured = capsys.readouterr()
+    assert "removed 0 file(s)" in captured.out and f"could not remove {entry()}" in captured.err
+    assert entry().exists()
 
 
 def test_the_cache_command_when_the_cache_is_off(monkeypatch, capsys):
