@@ -243,27 +243,24 @@ def _cmd_cache(args):
         out["pruned"] = response_cache.prune(folder, unused_days=args.unused_days, max_bytes=max_bytes,
                                              everything=args.clear)
     entries = [e for e in response_cache.cache_entries(folder) if e.kind == "entry"]
-    out["entries"] = len(entries)
-    out["bytes"] = sum(e.size_bytes for e in entries)
-    out["last_used"] = max((e.used for e in entries), default=None)
-    out["first_used"] = min((e.used for e in entries), default=None)
+    out.update(entries=len(entries), bytes=sum(e.size_bytes for e in entries),
+               first_used=min((e.used for e in entries), default=None),
+               last_used=max((e.used for e in entries), default=None))
+    pruned = out.get("pruned")
+    code = EXIT_OUTPUT if pruned and pruned["failed"] else EXIT_OK
     if args.json:
         print(json.dumps(out))
-        return EXIT_OK if not out.get("pruned", {}).get("failed") else EXIT_OUTPUT
-    pruned = out.get("pruned")
+        return code
     if pruned is not None:
         print(f"removed {pruned['removed']} file(s), {pruned['removed_bytes'] / 1e6:.1f} MB")
         for path in pruned["failed"]:
             print(f"render: could not remove {path}", file=sys.stderr)
-
-    def day(t):
-        return time.strftime("%Y-%m-%d", time.localtime(t))
-
     line = f"{folder}: {out['entries']} response(s), {out['bytes'] / 1e6:.1f} MB"
     if entries:
-        line += f", used between {day(out['first_used'])} and {day(out['last_used'])}"
+        first, last = (time.strftime("%Y-%m-%d", time.localtime(t)) for t in (out["first_used"], out["last_used"]))
+        line += f", used between {first} and {last}"
     print(line)
-    return EXIT_OK if not (pruned and pruned["failed"]) else EXIT_OUTPUT
+    return code
 
 
 def _cmd_check(args):
