@@ -536,12 +536,14 @@ def prune(folder=None, *, unused_days=None, max_bytes=None, everything=False, no
             keep.append(e)
     if max_bytes is not None:
         total = sum(e.size_bytes for e in keep if e.kind != "part")  # a writer's temporary is not removable yet
-        for e in sorted((e for e in keep if e.kind != "part"), key=lambda e: (e.used, e.path.name)):
-            if total <= max_bytes:
-                break
-            drop.append(e)
-            keep.remove(e)
-            total -= e.size_bytes
+        oldest_first = sorted((e for e in keep if e.kind != "part"), key=lambda e: (e.used, e.path.name))
+        over = 0
+        while total > max_bytes and over < len(oldest_first):
+            total -= oldest_first[over].size_bytes
+            over += 1
+        going = {e.path for e in oldest_first[:over]}
+        drop += oldest_first[:over]
+        keep = [e for e in keep if e.path not in going]  # one pass: a farm's folder may hold thousands
     removed, removed_bytes, failed = 0, 0, []
     for e in drop:
         try:
