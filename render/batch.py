@@ -514,6 +514,22 @@ def run_plan(plan, *, jobs=None, quiet=False, resume=False, shard=None, schedule
 
 
 def _run_locked(plan, out_dir, manifest_path, selected, *, jobs, quiet, resume, shard, scheduler):
+    """Run under the lock.  Ctrl-C before any source has started claims nothing: no manifest is written."""
+    try:
+        prepared = _prepare(plan, out_dir, manifest_path, selected, resume=resume, shard=shard,
+                            scheduler=scheduler)
+    except KeyboardInterrupt:
+        # Nothing has rendered: the previous manifest (if any) stays, this run's temporaries go.
+        _remove_tree(out_dir / ".render-tmp")
+        if shard is None:
+            _remove_tree(out_dir / RESPONSES_DIR)
+        raise
+    return _render_prepared(plan, out_dir, manifest_path, selected, prepared, jobs=jobs, quiet=quiet,
+                            shard=shard, scheduler=scheduler)
+
+
+def _prepare(plan, out_dir, manifest_path, selected, *, resume, shard, scheduler):
+    """Everything before the first source starts: leftovers, journal, rooms, what to skip."""
     job = plan.job
     prestart_scheduler(scheduler)  # a local cluster's start overlaps with the checks and the rooms below
     if shard is None:
@@ -558,6 +574,11 @@ def _run_locked(plan, out_dir, manifest_path, selected, *, jobs, quiet, resume, 
                 del entries[i]
                 todo.append(i)
         todo.sort()
+    return manifest, journal, entries, todo, spec, two_pass
+
+
+def _render_prepared(plan, out_dir, manifest_path, selected, prepared, *, jobs, quiet, shard, scheduler):
+    manifest, journal, entries, todo, spec, two_pass = prepared
     audio_s = sum(plan.tasks[i].frames_out / plan.tasks[i].info.rate_hz for i in todo)
     progress = _Progress(files=len(todo) * (2 if two_pass else 1), audio_s=audio_s * (2 if two_pass else 1),
                          quiet=quiet)

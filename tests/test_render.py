@@ -219,8 +219,8 @@ def test_peak_memory_does_not_grow_with_length(tmp_path):
     assert rss["long"] <= 1.10 * rss["short"], rss
 
 
-@pytest.mark.skipif(sys.platform == "win32", reason="SIGINT to a child process is POSIX")
-def test_ctrl_c_leaves_no_partial_output(tmp_path):
+def _interrupt_run(tmp_path, ready):
+    """Start ``render run`` on 8 files of 15 s, send SIGINT once ``ready(out)`` holds; returns (rc, stderr)."""
     import signal
     import time
 
@@ -233,17 +233,57 @@ def test_ctrl_c_leaves_no_partial_output(tmp_path):
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     out = tmp_path / "out"
     deadline = time.monotonic() + 60
-    while time.monotonic() < deadline and not list(out.glob(".*.part")) and proc.poll() is None:
-        time.sleep(0.02)  # wait until a stem is being written, then interrupt
+    while time.monotonic() < deadline and not ready(out) and proc.poll() is None:
+        time.sleep(0.01)
+    assert proc.poll() is None, "the run ended before it could be interrupted"
     proc.send_signal(signal.SIGINT)
     _, err = proc.communicate(timeout=120)
-    assert proc.returncode == 130, err
+    return proc.returncode, err
+
+
+def _left_no_temporaries(out):
     assert not [p for p in out.rglob("*") if p.name.endswith(".part")]
-    manifest = json.loads((out / "manifest.json").read_text())
-    assert manifest["summary"]["interrupted"] is True
+    assert not (out / ".render.lock").exists()
+    assert not (out / ".render-tmp").exists()
+    assert not (out / ".render-responses").exists()
+
+
+def _stems_match_manifest(out, manifest):
+    listed = set()
     for entry in manifest["sources"]:  # what the manifest calls rendered is complete
         for stem in entry["stems"].values():
             assert sf.info(str(out / stem["path"])).frames == stem["frames"]
+            listed.add(stem["path"])
+    # and nothing it does not list is there
+    assert {p.name for p in out.glob("*.wav")} == listed
+
+
+@pytest.mark.skipif(sys.platform == "win32", reason="SIGINT to a child process is POSIX")
+def test_ctrl_c_while_a_stem_is_written_leaves_no_partial_output(tmp_path):
+    # A stem's temporary is ".f<i>.<stem>.wav.<random>.part" (the run's lock has a temporary of its own).
+    rc, err = _interrupt_run(tmp_path, lambda out: bool(list(out.glob(".f*.wav.*.part"))))
+    out = tmp_path / "out"
+    assert rc == 130, err
+    _left_no_temporaries(out)
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["summary"]["interrupted"] is True
+    assert manifest["summary"]["rendered"] + manifest["summary"]["not_run"] == 8
+    _stems_match_manifest(out, manifest)
+
+
+@pytest.mark.skipif(sys.platform == "win32", reason="SIGINT to a child process is POSIX")
+def test_ctrl_c_before_rendering_claims_nothing(tmp_path):
+    # SIGINT as soon as the run holds the folder's lock: most often while the room is synthesised.
+    rc, err = _interrupt_run(tmp_path, lambda out: (out / ".render.lock").exists())
+    out = tmp_path / "out"
+    assert rc == 130, err
+    _left_no_temporaries(out)
+    if (out / "manifest.json").exists():  # the signal came after the first source had started
+        manifest = json.loads((out / "manifest.json").read_text())
+        assert manifest["summary"]["interrupted"] is True
+        _stems_match_manifest(out, manifest)
+    else:  # before: nothing rendered, nothing claimed
+        assert not list(out.glob("*.wav"))
 
 
 @pytest.mark.parametrize("ext, fmt", [("wav", "WAV"), ("flac", "FLAC")])
