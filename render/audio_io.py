@@ -488,6 +488,14 @@ class BlockWriter:
         else:
             raise OutputError(f"{self.path}: cannot find a free temporary name in {folder}")
         try:
+            self._open(tags)
+        except BaseException:  # Ctrl-C too: no temporary is left behind
+            self._discard()
+            raise
+        self._state = "open"
+
+    def _open(self, tags):
+        try:
             self._sf = sf.SoundFile(
                 self._fd,
                 mode="w",
@@ -498,7 +506,6 @@ class BlockWriter:
                 closefd=False,
             )
         except _SOUNDFILE_ERRORS as exc:
-            self._discard()
             raise OutputError(
                 f"{self.path}: cannot write {self.format} {self.subtype}, {self.channels} channels at "
                 f"{self.rate_hz} Hz: {_reason(exc)}"
@@ -509,7 +516,6 @@ class BlockWriter:
                 setattr(self._sf, name, value)  # libsndfile's text tags (title, artist, comment, ...)
             except (_SOUNDFILE_ERRORS + (AttributeError, TypeError)):
                 pass  # a container without that tag: nothing to keep it in
-        self._state = "open"
 
     # -- context manager -------------------------------------------------
     def __enter__(self):

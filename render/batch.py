@@ -185,13 +185,13 @@ class _Lock:
         host = socket.gethostname()
         # The lock appears complete or not at all: written to a temporary, then hard-linked into place.
         fd, tmp = tempfile.mkstemp(prefix=".render.lock.", suffix=".part", dir=str(self.path.parent))
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            json.dump({"pid": os.getpid(), "host": host,
-                       "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}, f)
         try:
+            with os.fdopen(fd, "w", encoding="utf-8") as f:
+                json.dump({"pid": os.getpid(), "host": host,
+                           "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}, f)
             self._take(tmp, host)
         finally:
-            _remove(tmp)
+            _remove(tmp)  # the lock is the hard link; the temporary goes, Ctrl-C or not
         return self
 
     def _take(self, tmp, host):
@@ -519,9 +519,10 @@ def _run_locked(plan, out_dir, manifest_path, selected, *, jobs, quiet, resume, 
         prepared = _prepare(plan, out_dir, manifest_path, selected, resume=resume, shard=shard,
                             scheduler=scheduler)
     except KeyboardInterrupt:
-        # Nothing has rendered: the previous manifest (if any) stays, this run's temporaries go.
-        _remove_tree(out_dir / ".render-tmp")
+        # Nothing has rendered: the previous manifest (if any) stays, this run's temporaries go
+        # (the folder is this run's alone unless it is a shard, whose temporaries start later).
         if shard is None:
+            _clean_leftovers(out_dir)
             _remove_tree(out_dir / RESPONSES_DIR)
         raise
     return _render_prepared(plan, out_dir, manifest_path, selected, prepared, jobs=jobs, quiet=quiet,

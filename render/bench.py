@@ -723,13 +723,16 @@ def _section_limit(run):
     import scipy.fft
     import soundfile as sf
 
-    from .convolve import choose_fft_size
+    from .convolve import choose_fft_size, whole_fft_size
 
     ir, _ = sf.read(str(run.ir_path), dtype="float64", always_2d=True)
     ir_frames, run.ir_channels = ir.shape
-    fft_size = choose_fft_size(ir_frames)  # what convolve.prepare_kernel chooses for the renderer
-    block_frames = fft_size - ir_frames + 1
-    blocks = -(-(run.frames + ir_frames - 1) // block_frames)
+    # What the renderer chooses (render.renderer.whole_size_for): one transform for a short source,
+    # else overlap-save at convolve.choose_fft_size.
+    whole = whole_fft_size(ir_frames, input_frames=run.frames)
+    fft_size = whole or choose_fft_size(ir_frames)
+    block_frames = run.frames if whole else fft_size - ir_frames + 1
+    blocks = 1 if whole else -(-(run.frames + ir_frames - 1) // block_frames)
     spectrum = scipy.fft.rfft(np.ascontiguousarray(ir.T), n=fft_size, axis=-1, workers=1)
     fft_s, io_s = [], []
     for i in range(run.repeats):

@@ -18,6 +18,12 @@ convolution, ``L + N - 1`` frames long, with no added latency.
 :func:`flush_blocks` gives the same last frames one transform at a time, so a
 stream's end needs no more memory than any block before it.
 
+A short input is cheaper in one transform: :func:`convolve_whole` puts the
+whole input at the start of a transform of at least ``L + N - 1`` frames, so
+no frames are spent on overlap, where overlap-save's first transform would
+spend ``N - 1`` on the zeros before the signal.  :func:`whole_fft_size` says
+when that wins and at which size.
+
 >>> import numpy as np
 >>> ir = np.array([[1.0], [0.5], [0.25]])
 >>> kernel = prepare_kernel(ir, fft_size=8)
@@ -54,6 +60,9 @@ __all__ = [
     "convolve_block",
     "flush",
     "flush_blocks",
+    "WHOLE_SIZES",
+    "whole_fft_size",
+    "convolve_whole",
 ]
 
 #: Cost of one real FFT per ``K·log2 K`` relative to one complex product per
@@ -111,6 +120,125 @@ def fft_cost_per_frame(fft_size, *, ir_frames, fft_cost=FFT_COST):
 #: N = 165 840 (2.5 s at 48 kHz), 43-52 ns per output frame and channel at K = 3.6-4.7 N
 #: against 83-96 ns at K = 6-16 N.
 MAX_RATIO = 4.5
+
+
+#: Mantissas of the sizes :func:`whole_fft_size` picks from: ``m · 2**a`` for ``m`` in this tuple, all
+#: 5-smooth (fast for pocketfft) and at most 25 % apart.  Our choice: a coarse grid, so inputs of
+#: similar length share a size and a worker reuses its prepared kernel (about 10 % of the transform
+#: is padding on average).
+WHOLE_SIZES = (8, 9, 10, 12, 15)
+
+
+def _transform_cost(k):
+    """Modelled work of one forward and one inverse transform of size ``k`` plus the products."""
+    return 2.0 * FFT_COST * k * math.log2(k) + k
+
+
+def _whole_grid_size(frames):
+    """The smallest ``m · 2**a >= frames`` (``m`` in :data:`WHOLE_SIZES`, ``a >= 0``)."""
+    a = max(0, int(frames).bit_length() - 4)
+    best = None
+    for shift in (a - 1, a, a + 1):
+        if shift < 0:
+            continue
+        for m in WHOLE_SIZES:
+            size = m << shift
+            if size >= frames and (best is None or size < best):
+                best = size
+    return best  # found: 8 << (a + 1) = 2**bit_length > frames
+
+
+def whole_fft_size(ir_frames, *, input_frames, tail_frames=None, max_fft=2**22):
+    """Transform size for convolving a whole input in one transform, or None when streaming is cheaper.
+
+    One transform of size ``K >= L + N - 1`` (``K`` from the grid of
+    :data:`WHOLE_SIZES`) against the ``ceil((L + T) / B)`` transforms of
+    size ``K_s = choose_fft_size(N)`` that overlap-save needs for the same
+    ``L + T`` output frames (``B = K_s - N + 1``), in the cost model of
+    :func:`fft_cost_per_frame`.  The whole transform is only chosen when
+    ``K <= K_s``, so it never needs more memory than streaming would.  A pure
+    function of its arguments: the same file is planned the same way on every
+    machine.
+
+    Parameters
+    ----------
+    ir_frames : int
+        Impulse-response length ``N``, ``>= 1``.
+    input_frames : int
+        Input length ``L``, ``>= 0`` (0 gives None).
+    tail_frames : int, optional
+        Output frames kept after the input, ``0`` to ``N - 1`` (default ``N - 1``).
+    max_fft : int
+        As for :func:`choose_fft_size`.
+
+    Returns
+    -------
+    int or None
+
+    >>> whole_fft_size(48000, input_frames=96000)   # 2 s through a 1 s response
+    147456
+    >>> whole_fft_size(48000, input_frames=48000 * 600) is None   # 10 min: streaming
+    True
+    """
+    if not _is_int(ir_frames) or ir_frames < 1:
+        raise ParameterError(f"ir_frames = {ir_frames!r}: must be an integer >= 1")
+    if not _is_int(input_frames) or input_frames < 0:
+        raise ParameterError(f"input_frames = {input_frames!r}: must be an integer >= 0")
+    n, length = int(ir_frames), int(input_frames)
+    tail = n - 1 if tail_frames is None else tail_frames
+    if not (_is_int(tail) and 0 <= tail <= n - 1):
+        raise ParameterError(f"tail_frames = {tail_frames!r}: must be an integer from 0 to ir_frames - 1 = {n - 1}")
+    if length == 0:
+        return None
+    stream_k = choose_fft_size(n, max_fft=max_fft)
+    transforms = -(-(length + tail) // (stream_k - n + 1))
+    k = _whole_grid_size(length + n - 1)
+    if k > stream_k or _transform_cost(k) >= transforms * _transform_cost(stream_k):
+        return None
+    return int(k)
+
+
+def convolve_whole(x, *, kernel, tail_frames=None):
+    """Linear convolution of a whole input in one transform.
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        Input, shape ``(L, S)``, ``L >= 1``, real values (converted to float64).
+        ``S`` as for :func:`initial_state`.
+    kernel : Kernel
+        Prepared with ``fft_size >= L + N - 1`` (e.g. :func:`whole_fft_size`).
+    tail_frames : int, optional
+        Output frames kept after the input, ``0`` to ``N - 1`` (default ``N - 1``).
+
+    Returns
+    -------
+    numpy.ndarray
+        float64, shape ``(L + tail_frames, out_channels)``, C-contiguous: the
+        same frames as the stream of :func:`convolve_block` and :func:`flush`,
+        to rounding (another transform size).
+    """
+    x = np.asarray(x)
+    if x.ndim != 2 or x.shape[0] < 1 or x.shape[1] < 1:
+        raise ParameterError(f"x has shape {x.shape}: expected (frames, channels) with frames >= 1")
+    if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
+        raise ParameterError(f"x has dtype {x.dtype}: expected real numbers")
+    length, n, k = x.shape[0], kernel.ir_frames, kernel.fft_size
+    tail = n - 1 if tail_frames is None else tail_frames
+    if not (_is_int(tail) and 0 <= tail <= n - 1):
+        raise ParameterError(f"tail_frames = {tail_frames!r}: must be an integer from 0 to ir_frames - 1 = {n - 1}")
+    if length + n - 1 > k:
+        raise ParameterError(f"x has {length} frames: a kernel of fft_size {k} takes at most {k - n + 1} "
+                             f"in one transform (ir_frames = {n})")
+    out_channels = output_channels(x.shape[1], ir_channels=kernel.ir_channels)
+    spec = scipy.fft.rfft(np.ascontiguousarray(x.T, dtype=np.float64), n=k, axis=-1, workers=1)
+    if spec.shape[0] == out_channels:
+        np.multiply(spec, kernel.spectrum, out=spec)
+    else:
+        spec = spec * kernel.spectrum
+    y = scipy.fft.irfft(spec, n=k, axis=-1, workers=1)
+    del spec
+    return np.ascontiguousarray(y[:, : length + tail].T)
 
 
 def choose_fft_size(ir_frames, *, max_fft=2**22, min_fft=MIN_FFT, fft_cost=FFT_COST, max_ratio=MAX_RATIO):

@@ -66,12 +66,14 @@ def write_bytes_atomic(path, data):
             f.flush()
             os.fsync(f.fileno())
         os.replace(tmp, path)
-    except OSError as e:
+    except BaseException as e:  # Ctrl-C too: no temporary is left behind
         try:
             os.unlink(tmp)
         except OSError:
             pass
-        raise OutputError(f"{path}: cannot write ({e.strerror or e})") from None
+        if isinstance(e, OSError):
+            raise OutputError(f"{path}: cannot write ({e.strerror or e})") from None
+        raise
     return path
 
 

@@ -46,7 +46,8 @@ from .errors import AudioInputError, OutputError, RenderError
 from .response_cache import cached_synthesize
 from .units import db_to_gain, gain_to_db
 
-__all__ = ["render_task", "measure_task", "makeup_gain_db", "kernel_for", "CUT_FADE_S", "TEMP_DIR", "temp_path_for"]
+__all__ = ["render_task", "measure_task", "makeup_gain_db", "kernel_for", "whole_size_for", "stream_block_frames",
+           "CUT_FADE_S", "TEMP_DIR", "temp_path_for"]
 
 #: Fade of the wet stem at the end of the source with ``tail = "cut"``, in seconds.
 CUT_FADE_S = 0.05
@@ -54,7 +55,12 @@ CUT_FADE_S = 0.05
 TEMP_DIR = ".render-tmp"
 
 _KERNELS: "OrderedDict[tuple, convolve.Kernel]" = OrderedDict()
+#: Prepared kernels a process keeps: at most this many, holding at most _KERNEL_CACHE_BYTES (the
+#: newest is always kept).  Our choice: short sources get kernels sized to their length
+#: (:func:`render.convolve.whole_fft_size`), so a worker of a folder of dialogue lines meets a few
+#: sizes per room; 64 MiB is five stereo kernels of a 2.5 s room at 48 kHz.
 _KERNEL_CACHE_SIZE = 8
+_KERNEL_CACHE_BYTES = 64 * 2**20
 
 
 #: Folder (inside the output folder) where the batch leaves each response as float64 ``.npy``,
@@ -71,14 +77,16 @@ def response_store_path(output_dir, *, room, rate_hz, channels, tail_floor_db):
     return Path(output_dir) / RESPONSES_DIR / f"{name}.npy"
 
 
-def kernel_for(task, output_dir=None):
+def kernel_for(task, output_dir=None, *, fft_size=None):
     """The prepared (wet-gain-scaled) response of a task, cached per process.
 
     The response comes from the batch's float64 store in ``output_dir`` when
     it is there (memory-mapped: the same bits as a synthesis), else from
-    :func:`render.response_cache.cached_synthesize`.
+    :func:`render.response_cache.cached_synthesize`.  ``fft_size``: as for
+    :func:`render.convolve.prepare_kernel` (default: the streaming size).
     """
-    key = (task.room.fingerprint(), float(task.info.rate_hz), task.channels_out, task.tail_floor_db, task.wet_db)
+    key = (task.room.fingerprint(), float(task.info.rate_hz), task.channels_out, task.tail_floor_db, task.wet_db,
+           fft_size)
     kernel = _KERNELS.get(key)
     if kernel is None:
         ir = None
@@ -97,13 +105,30 @@ def kernel_for(task, output_dir=None):
                 f"{task.key}: the room's response has {ir.shape[0] - 1} tail frames, the plan expected "
                 f"{task.tail_frames} (planned with another version of the engine?)"
             )
-        kernel = convolve.prepare_kernel(np.asarray(ir) * db_to_gain(task.wet_db))
+        kernel = convolve.prepare_kernel(np.asarray(ir) * db_to_gain(task.wet_db), fft_size=fft_size)
         _KERNELS[key] = kernel
-        while len(_KERNELS) > _KERNEL_CACHE_SIZE:
+        while len(_KERNELS) > 1 and (len(_KERNELS) > _KERNEL_CACHE_SIZE or
+                                     sum(k.nbytes for k in _KERNELS.values()) > _KERNEL_CACHE_BYTES):
             _KERNELS.popitem(last=False)
     else:
         _KERNELS.move_to_end(key)
     return kernel
+
+
+def whole_size_for(task):
+    """The transform size that convolves the task's whole source at once, or None: streamed.
+
+    :func:`render.convolve.whole_fft_size` for the source's length, the
+    room's response and the kept tail: a pure function of the plan.
+    """
+    tail = task.tail_frames if task.tail == "extend" else 0
+    return convolve.whole_fft_size(task.tail_frames + 1, input_frames=task.info.frames, tail_frames=tail)
+
+
+def stream_block_frames(task):
+    """New input frames per transform when the task's source is streamed (overlap-save)."""
+    n = task.tail_frames + 1
+    return convolve.choose_fft_size(n) - n + 1
 
 
 def temp_path_for(task, output_dir):
@@ -197,12 +222,17 @@ def _dry(block, task):
     return dry
 
 
-def _convolved(task, kernel, check=None):
-    """(dry, wet) blocks, aligned, ``task.frames_out`` frames in all, cut fade applied."""
+def _convolved(task, output_dir, check=None):
+    """(dry, wet) blocks, aligned, ``task.frames_out`` frames in all, cut fade applied.
+
+    A short source is read whole and convolved in one transform
+    (:func:`whole_size_for`), a longer one streamed block by block.
+    """
     info = task.info
     total_in = info.frames
     fade = min(int(round(CUT_FADE_S * info.rate_hz)), total_in) if task.tail == "cut" else 0
-    state = convolve.initial_state(kernel, channels=info.channels)
+    whole = whole_size_for(task)
+    kernel = kernel_for(task, output_dir, fft_size=whole)
     queue = _Queue(task.channels_out)
     done = 0
 
@@ -220,6 +250,20 @@ def _convolved(task, kernel, check=None):
         done += n
         return dry, wet
 
+    if whole is not None:
+        blocks = list(audio_io.read_blocks(task.source, block_frames=total_in))
+        x = blocks[0] if len(blocks) == 1 else np.concatenate(blocks or [np.zeros((0, info.channels))])
+        del blocks
+        if x.shape[0] != total_in:
+            raise AudioInputError(f"{task.key}: read {x.shape[0]} frames, the file's header says {total_in}")
+        if check is not None:
+            check(x)
+        queue.push(_dry(x, task))
+        wet = convolve.convolve_whole(x, kernel=kernel, tail_frames=task.tail_frames if task.tail == "extend" else 0)
+        del x
+        yield pair(wet)
+        return
+    state = convolve.initial_state(kernel, channels=info.channels)
     for block in audio_io.read_blocks(task.source, block_frames=kernel.block_frames):
         if check is not None:
             check(block)
@@ -304,14 +348,13 @@ def measure_task(task, *, output_dir):
         ``before`` (the mix's loudness and true peak at unit gain), ``hops``
         (per-100 ms weighted energies, for group loudness) and ``hop_frames``.
     """
-    kernel = kernel_for(task, output_dir)
     temp = temp_path_for(task, output_dir)
     temp.parent.mkdir(parents=True, exist_ok=True)
     meter = _Meter(task.info.rate_hz, task.channels_out)
     container = audio_io.wav_container(frames=task.frames_out, channels=task.channels_out, subtype="DOUBLE")
     with audio_io.BlockWriter(temp, rate_hz=task.info.rate_hz, channels=task.channels_out, format=container,
                               subtype="DOUBLE", durable=False) as w:
-        for dry, wet in _convolved(task, kernel, _SourceCheck(task)):
+        for dry, wet in _convolved(task, output_dir, _SourceCheck(task)):
             meter.update(dry + wet)
             w.write(wet)
     return {"before": meter.result(), "hops": meter.hops(), "hop_frames": meter.loud.hop_frames}
@@ -505,7 +548,7 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
     check = _SourceCheck(task)
     probes = 0
     if two_pass:
-        block_frames = max(4096, kernel_for(task, output_dir).block_frames)
+        block_frames = max(4096, stream_block_frames(task))
         if limit is not None and target_lufs is not None and _attempt == 1:
             try:
                 gain_db, probes = makeup_gain_db(task, temp, gain_db=gain_db, limit=limit, target_lufs=target_lufs,
@@ -516,7 +559,7 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
             gain = db_to_gain(gain_db)
         stream = _from_temporary(task, temp, block_frames=block_frames, check=check)
     else:
-        stream = _convolved(task, kernel_for(task, output_dir), check)
+        stream = _convolved(task, output_dir, check)
     for _, rel in task.outputs:
         (Path(output_dir) / rel).parent.mkdir(parents=True, exist_ok=True)
     tags = audio_io.read_tags(task.source)

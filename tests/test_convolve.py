@@ -11,15 +11,18 @@ import scipy.signal
 
 from render.convolve import (
     MAX_RATIO,
+    WHOLE_SIZES,
     ConvolverState,
     choose_fft_size,
     convolve_block,
+    convolve_whole,
     fft_cost_per_frame,
     flush,
     flush_blocks,
     initial_state,
     output_channels,
     prepare_kernel,
+    whole_fft_size,
 )
 from render.convolve import _transform
 from render.errors import ParameterError
@@ -367,3 +370,65 @@ def test_kernel_fields():
     assert kernel.spectrum.shape == (2, 151) and kernel.spectrum.dtype == np.complex128
     # Spectrum of the zero-padded response; numpy's FFT as an independent reference
     np.testing.assert_allclose(kernel.spectrum, np.fft.rfft(h.T, n=300, axis=-1), rtol=0, atol=1e-9)
+
+
+# -- a whole input in one transform ----------------------------------------------------------
+
+
+@pytest.mark.parametrize("frames, s, n, c", [(1, 1, 1, 1), (3000, 1, 200, 1), (3000, 2, 200, 2), (2999, 1, 150, 2),
+                                             (2500, 6, 90, 1), (10, 2, 4000, 2)])
+@pytest.mark.parametrize("tail", [None, 0, "half"])
+def test_whole_input_in_one_transform_matches_scipy(frames, s, n, c, tail):
+    rng = np.random.default_rng(frames + 7 * s + n + c)
+    x, h = _signal(rng, frames, s), _ir(rng, n, c)
+    tail_frames = (n - 1) // 2 if tail == "half" else tail
+    kernel = prepare_kernel(h, fft_size=scipy.fft.next_fast_len(frames + n - 1, real=True))
+    got = convolve_whole(x, kernel=kernel, tail_frames=tail_frames)
+    keep = frames + (n - 1 if tail_frames is None else tail_frames)
+    assert got.shape == (keep, output_channels(s, ir_channels=c)) and got.flags.c_contiguous
+    # scipy.signal.fftconvolve as the reference library, and the streamed path of this module.
+    assert np.max(np.abs(got - _reference(x, h)[:keep])) < TOL
+    stream_kernel = prepare_kernel(h)
+    assert np.max(np.abs(got - _stream(x, stream_kernel, 1000, tail_frames=tail_frames))) < TOL
+
+
+def test_whole_input_needs_a_transform_of_at_least_l_plus_n_minus_1():
+    kernel = prepare_kernel(np.ones((100, 1)), fft_size=1000)
+    convolve_whole(np.ones((901, 1)), kernel=kernel)  # 901 + 99 = 1000: fits
+    with pytest.raises(ParameterError, match="at most 901"):
+        convolve_whole(np.ones((902, 1)), kernel=kernel)
+    with pytest.raises(ParameterError, match="tail_frames"):
+        convolve_whole(np.ones((10, 1)), kernel=kernel, tail_frames=100)
+    with pytest.raises(ParameterError, match="shape"):
+        convolve_whole(np.ones((0, 1)), kernel=kernel)
+
+
+def _transforms_cost(k):
+    return 2.0 * k * np.log2(k) + k  # the model of fft_cost_per_frame, per transform
+
+
+@pytest.mark.parametrize("ir_frames", [1, 200, 14_400, 165_840])
+@pytest.mark.parametrize("input_frames", [1, 500, 48_000, 288_000, 1_000_000, 2_880_000])
+@pytest.mark.parametrize("tail", ["full", "none"])
+def test_whole_size_is_the_smallest_grid_size_that_fits_and_only_when_cheaper(ir_frames, input_frames, tail):
+    tail_frames = ir_frames - 1 if tail == "full" else 0
+    need = input_frames + ir_frames - 1
+    grid = sorted(m << a for m in WHOLE_SIZES for a in range(0, 24))
+    fits = min(size for size in grid if size >= need)
+    stream_k = choose_fft_size(ir_frames)
+    transforms = -(-(input_frames + tail_frames) // (stream_k - ir_frames + 1))
+    cheaper = _transforms_cost(fits) < transforms * _transforms_cost(stream_k)
+    expected = fits if (fits <= stream_k and cheaper) else None
+    assert whole_fft_size(ir_frames, input_frames=input_frames, tail_frames=tail_frames) == expected
+
+
+def test_whole_size_decisions_on_worked_cases():
+    # 2 s through a 1 s response at 48 kHz: one transform of 9 * 2**14 = 147 456 >= 143 999 frames.
+    assert whole_fft_size(48_000, input_frames=96_000) == 147_456
+    # 10 min through the same response: streamed.
+    assert whole_fft_size(48_000, input_frames=48_000 * 600) is None
+    # An empty input has nothing to transform, and the arguments are checked.
+    assert whole_fft_size(100, input_frames=0) is None
+    for bad in ({"input_frames": -1}, {"input_frames": 1.5}, {"input_frames": 10, "tail_frames": 100}):
+        with pytest.raises(ParameterError):
+            whole_fft_size(100, **bad)

@@ -16,6 +16,7 @@ from render.cli import EXIT_JOB, EXIT_OK, EXIT_PARTIAL, main
 from render.errors import JobError
 from render.job import load_job
 from render.plan import plan_job
+from render.renderer import whole_size_for
 from render.synthesis import synthesize
 from render.units import db_to_gain
 
@@ -40,13 +41,17 @@ def render(job_path, *args):
     return main(["run", str(job_path), "--quiet", "--jobs", "1", *args])
 
 
-def test_stems_align_null_and_match_scipy(tmp_path, make_job):
+@pytest.mark.parametrize("frames, whole", [(9000, True), (200_000, False)])
+def test_stems_align_null_and_match_scipy(tmp_path, make_job, frames, whole):
+    # A short source is convolved in one transform, a longer one streamed: both match the reference.
     rate = 48000
-    src = np.zeros((9000, 1))
+    src = np.zeros((frames, 1))
     src[1234, 0] = 0.5  # an impulse at a known sample
     src[3000:3100, 0] = np.hanning(100) * 0.25
+    src[-50:, 0] = 0.125  # and a step at the very end
     write_audio(tmp_path / "in" / "a.wav", src, rate, "DOUBLE")
     job = make_job(job_text(["in/*.wav"]))
+    assert (whole_size_for(plan_job(load_job(job)).tasks[0]) is not None) == whole
     assert render(job) == EXIT_OK
     room = load_job(job).rooms["box"]
     ir = synthesize(room, rate_hz=float(rate), channels=1).ir
@@ -320,3 +325,23 @@ def test_a_second_run_reads_the_room_from_the_response_cache(tmp_path, make_job,
     second = json.loads((tmp_path / "out" / "manifest.json").read_text())["sources"][0]["stems"]
     assert calls == ([] if cache == "on" else [1])
     assert {s: v["sha256"] for s, v in first.items()} == {s: v["sha256"] for s, v in second.items()}
+
+
+def test_kernels_kept_per_process_stay_within_their_byte_budget(tmp_path, make_job, rng, monkeypatch):
+    from render import renderer
+
+    write_audio(tmp_path / "in" / "a.wav", speechlike(rng, 4000, 1), 48000, "PCM_24")
+    task = plan_job(load_job(make_job(job_text(["in/*.wav"])))).tasks[0]
+    monkeypatch.setattr(renderer, "_KERNELS", renderer.OrderedDict())
+    first = renderer.kernel_for(task, fft_size=2**16)  # the room's response is 33 750 frames
+    assert renderer.kernel_for(task, fft_size=2**16) is first  # a hit: the same prepared kernel
+    monkeypatch.setattr(renderer, "_KERNEL_CACHE_BYTES", int(2.5 * first.nbytes))
+    sizes = [2**16, 9 * 2**13, 10 * 2**13, 12 * 2**13]
+    for size in sizes:
+        renderer.kernel_for(task, fft_size=size)
+    kept = list(renderer._KERNELS.values())
+    assert sum(k.nbytes for k in kept) <= renderer._KERNEL_CACHE_BYTES
+    assert kept[-1].fft_size == sizes[-1]  # the newest stays, the oldest went first
+    monkeypatch.setattr(renderer, "_KERNEL_CACHE_BYTES", 1)
+    assert renderer.kernel_for(task, fft_size=2**17).fft_size == 2**17
+    assert len(renderer._KERNELS) == 1  # over budget on its own, yet kept: it is in use
