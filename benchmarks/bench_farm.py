@@ -9,7 +9,7 @@ The machine may be shared, so the configurations run alternately for
 taken within a round; the median over the rounds is the figure to quote.
 
 Each run is ``render run JOB --quiet ...`` in a fresh interpreter (through
-``main()`` of :mod:`render.cli`, with timestamps taken around the batch's
+``entry()`` of :mod:`render.cli` (what the command runs), with timestamps taken around the batch's
 phases by wrapping a few of :mod:`render.batch`'s functions in that process;
 nothing is added to the product).  Per phase, in seconds from launching
 that process:
@@ -63,7 +63,7 @@ CONFIGS = {
 def _child(phases_path, argv):
     """Run ``render`` with argv in this process, timestamping the batch's phases into phases_path."""
     import render.batch as batch
-    from render.cli import main
+    from render.cli import entry
 
     stamps = {}
 
@@ -110,7 +110,7 @@ def _child(phases_path, argv):
 
     batch._Progress.step = timed_step
     try:
-        code = main(argv)
+        code = entry(argv)
     finally:
         Path(phases_path).write_text(json.dumps(stamps))
     return code

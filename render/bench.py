@@ -277,7 +277,8 @@ def _peak_rss_kib():
 
 
 def _child_run(job_path, *, jobs):
-    """``render run JOB --jobs N --quiet`` in this process, timing run_plan and noting peak RSS."""
+    """``render run JOB --jobs N --quiet`` in this process (as the command runs it: :func:`render.cli.entry`),
+    timing run_plan and noting peak RSS."""
     from . import batch, cli
 
     facts = {}
@@ -294,7 +295,7 @@ def _child_run(job_path, *, jobs):
     batch.run_plan = timed  # the CLI imports run_plan when it runs, so it finds this one
     try:
         t0 = time.perf_counter()
-        code = cli.main(["run", str(job_path), "--jobs", str(jobs), "--quiet"])
+        code = cli.entry(["run", str(job_path), "--jobs", str(jobs), "--quiet"])
         facts["main_s"] = time.perf_counter() - t0
     finally:
         batch.run_plan = original

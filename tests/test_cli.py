@@ -67,3 +67,21 @@ def test_analyze_refuses_silence(tmp_path, capsys):
     sf.write(str(path), np.zeros((4800, 1)), 48000, subtype="FLOAT")
     assert main(["analyze", str(path)]) == EXIT_PARAMETER
     assert "render:" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("argv, code", [(["rooms"], EXIT_OK), (["ir", "no-such-room", "-o", "x.wav"], EXIT_PARAMETER)])
+def test_the_command_entry_returns_mains_exit_code_then_freezes_the_collector(argv, code, monkeypatch, tmp_path):
+    import gc
+    import subprocess
+    import sys
+
+    from render import cli
+
+    calls = []
+    monkeypatch.setattr(gc, "freeze", lambda: calls.append("freeze"))
+    monkeypatch.chdir(tmp_path)
+    assert cli.entry(argv) == code == main(argv)
+    assert calls == ["freeze"]  # once, after the command
+    # And as installed: `python -m render` exits with the same code.
+    proc = subprocess.run([sys.executable, "-m", "render", *argv], capture_output=True, text=True)
+    assert proc.returncode == code, proc.stderr
