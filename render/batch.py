@@ -190,6 +190,16 @@ class _Lock:
                 json.dump({"pid": os.getpid(), "host": host,
                            "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}, f)
             self._take(tmp, host)
+        except BaseException:
+            # Ctrl-C between the link and the return: a lock that is ours (the same file as our
+            # temporary) goes too, since __exit__ will not run.
+            try:
+                if os.path.samefile(tmp, self.path):
+                    _remove(self.path)
+            except OSError:
+                pass
+            self.held = False
+            raise
         finally:
             _remove(tmp)  # the lock is the hard link; the temporary goes, Ctrl-C or not
         return self
@@ -584,15 +594,17 @@ def _render_prepared(plan, out_dir, manifest_path, selected, prepared, *, jobs, 
     progress = _Progress(files=len(todo) * (2 if two_pass else 1), audio_s=audio_s * (2 if two_pass else 1),
                          quiet=quiet)
     interrupted = False
-    executor = _executor(min(jobs, max(len(todo), 1)), scheduler) if todo else None
+    executor = None  # made inside the try below: a Ctrl-C while a cluster starts is handled like any other
 
     def execute(calls):
         """Run (index, mode, kwargs) calls; yield (index, status, payload) as they finish."""
+        # Each result is yielded (and recorded by the caller) before the progress bar moves, so a
+        # Ctrl-C during the bar's update cannot lose a finished file.
         if executor is None:
             for i, mode, kwargs in calls:
                 status, payload = _worker(plan.tasks[i], out_dir, mode, kwargs)
-                progress.step(audio_s=plan.tasks[i].frames_out / plan.tasks[i].info.rate_hz, label=plan.tasks[i].key)
                 yield i, status, payload
+                progress.step(audio_s=plan.tasks[i].frames_out / plan.tasks[i].info.rate_hz, label=plan.tasks[i].key)
             return
         futures = {executor.submit(_worker, plan.tasks[i], out_dir, mode, kwargs): i for i, mode, kwargs in calls}
         for fut in cf.as_completed(futures):
@@ -601,8 +613,8 @@ def _render_prepared(plan, out_dir, manifest_path, selected, prepared, *, jobs, 
                 status, payload = fut.result()
             except Exception as e:  # a worker died (killed, out of memory)
                 status, payload = "failed", f"{plan.tasks[i].key}: worker failed: {type(e).__name__}: {e}"
-            progress.step(audio_s=plan.tasks[i].frames_out / plan.tasks[i].info.rate_hz, label=plan.tasks[i].key)
             yield i, status, payload
+            progress.step(audio_s=plan.tasks[i].frames_out / plan.tasks[i].info.rate_hz, label=plan.tasks[i].key)
 
     def record(i, status, payload, before=None, decision=None):
         t = plan.tasks[i]
@@ -614,6 +626,7 @@ def _render_prepared(plan, out_dir, manifest_path, selected, prepared, *, jobs, 
 
     limit = spec.ceiling_dbtp if (spec.ceiling_dbtp is not None and spec.over_ceiling == "limit") else None
     try:
+        executor = _executor(min(jobs, max(len(todo), 1)), scheduler) if todo else None
         if not two_pass:
             for i, status, payload in execute([(i, "render", {"limit": limit}) for i in todo]):
                 record(i, status, payload)
@@ -627,7 +640,7 @@ def _render_prepared(plan, out_dir, manifest_path, selected, prepared, *, jobs, 
             decisions = {}
             if spec.normalize == "group":
                 by_group = {}
-                for i in measured:
+                for i in sorted(measured):  # not completion order: the group's mean is summed in one order
                     by_group.setdefault(plan.tasks[i].group, []).append(i)
                 for members in by_group.values():
                     lufs = integrated_over([measured[i]["hops"] for i in members],

@@ -650,6 +650,24 @@ def render_task(task, *, output_dir, gain_db=0.0, limit=None, two_pass=False, ta
         if two_pass:
             _unlink(temp)
         raise
+    try:
+        return _finish(task, output_dir, temp, meta, notes, check, after, lim, peaks, clipped, written,
+                       gain_db=gain_db, limit=limit, two_pass=two_pass, target_lufs=target_lufs, probes=probes,
+                       started=started, _attempt=_attempt)
+    except KeyboardInterrupt:
+        # Ctrl-C after the stems were committed but before the result reached the manifest: the
+        # stems go, so nothing is on disk that the manifest does not list.
+        for _, rel in task.outputs:
+            _unlink(Path(output_dir) / rel)
+        if two_pass:
+            _unlink(temp)
+        raise
+
+
+def _finish(task, output_dir, temp, meta, notes, check, after, lim, peaks, clipped, written, *, gain_db, limit,
+            two_pass, target_lufs, probes, started, _attempt):
+    """After the stems are committed: a further make-up pass if needed, metadata, hashes, the result."""
+    info = task.info
     if (
         two_pass
         and limit is not None
