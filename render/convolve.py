@@ -112,7 +112,7 @@ def fft_cost_per_frame(fft_size, *, ir_frames, fft_cost=FFT_COST):
     k, n = int(fft_size), int(ir_frames)
     if not (1 <= n <= k):
         raise ParameterError(f"fft_size = {fft_size!r}: must be >= ir_frames = {ir_frames!r}")
-    return (2.0 * fft_cost * k * math.log2(k) + k) / (k - n + 1)
+    return _transform_cost(k, fft_cost) / (k - n + 1)
 
 
 #: Largest transform considered, as a multiple of the response length.  The K·log K model keeps
@@ -122,6 +122,23 @@ def fft_cost_per_frame(fft_size, *, ir_frames, fft_cost=FFT_COST):
 MAX_RATIO = 4.5
 
 
+def _kept_tail(tail_frames, ir_frames):
+    """``tail_frames`` validated against ``ir_frames`` (None: ``ir_frames - 1``), as an int."""
+    n1 = int(ir_frames) - 1
+    if tail_frames is None:
+        return n1
+    if _is_int(tail_frames) and 0 <= tail_frames <= n1:
+        return int(tail_frames)
+    raise ParameterError(f"tail_frames = {tail_frames!r}: must be an integer from 0 to ir_frames - 1 = {n1}")
+
+
+def _times_kernel(spec, kernel, out_channels):
+    """The input spectra times the kernel's (in place when the channel counts agree)."""
+    if spec.shape[0] == out_channels:
+        return np.multiply(spec, kernel.spectrum, out=spec)
+    return spec * kernel.spectrum
+
+
 #: Mantissas of the sizes :func:`whole_fft_size` picks from: ``m · 2**a`` for ``m`` in this tuple, all
 #: 5-smooth (fast for pocketfft) and at most 25 % apart.  Our choice: a coarse grid, so inputs of
 #: similar length share a size and a worker reuses its prepared kernel (about 10 % of the transform
@@ -129,9 +146,9 @@ MAX_RATIO = 4.5
 WHOLE_SIZES = (8, 9, 10, 12, 15)
 
 
-def _transform_cost(k):
+def _transform_cost(k, fft_cost=FFT_COST):
     """Modelled work of one forward and one inverse transform of size ``k`` plus the products."""
-    return 2.0 * FFT_COST * k * math.log2(k) + k
+    return 2.0 * fft_cost * k * math.log2(k) + k
 
 
 def _whole_grid_size(frames):
@@ -185,9 +202,7 @@ def whole_fft_size(ir_frames, *, input_frames, tail_frames=None, max_fft=2**22):
     if not _is_int(input_frames) or input_frames < 0:
         raise ParameterError(f"input_frames = {input_frames!r}: must be an integer >= 0")
     n, length = int(ir_frames), int(input_frames)
-    tail = n - 1 if tail_frames is None else tail_frames
-    if not (_is_int(tail) and 0 <= tail <= n - 1):
-        raise ParameterError(f"tail_frames = {tail_frames!r}: must be an integer from 0 to ir_frames - 1 = {n - 1}")
+    tail = _kept_tail(tail_frames, n)
     if length == 0:
         return None
     stream_k = choose_fft_size(n, max_fft=max_fft)
@@ -224,18 +239,13 @@ def convolve_whole(x, *, kernel, tail_frames=None):
     if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
         raise ParameterError(f"x has dtype {x.dtype}: expected real numbers")
     length, n, k = x.shape[0], kernel.ir_frames, kernel.fft_size
-    tail = n - 1 if tail_frames is None else tail_frames
-    if not (_is_int(tail) and 0 <= tail <= n - 1):
-        raise ParameterError(f"tail_frames = {tail_frames!r}: must be an integer from 0 to ir_frames - 1 = {n - 1}")
+    tail = _kept_tail(tail_frames, n)
     if length + n - 1 > k:
         raise ParameterError(f"x has {length} frames: a kernel of fft_size {k} takes at most {k - n + 1} "
                              f"in one transform (ir_frames = {n})")
     out_channels = output_channels(x.shape[1], ir_channels=kernel.ir_channels)
     spec = scipy.fft.rfft(np.ascontiguousarray(x.T, dtype=np.float64), n=k, axis=-1, workers=1)
-    if spec.shape[0] == out_channels:
-        np.multiply(spec, kernel.spectrum, out=spec)
-    else:
-        spec = spec * kernel.spectrum
+    spec = _times_kernel(spec, kernel, out_channels)
     y = scipy.fft.irfft(spec, n=k, axis=-1, workers=1)
     del spec
     return np.ascontiguousarray(y[:, : length + tail].T)
@@ -493,11 +503,7 @@ def _transform(x, nseg, kernel, out_channels):
     k, b, n = kernel.fft_size, kernel.block_frames, kernel.ir_frames
     out = np.empty((out_channels, nseg * b))
     for j in range(nseg):
-        spec = scipy.fft.rfft(x[:, j * b : j * b + k], axis=-1, workers=1)
-        if spec.shape[0] == out_channels:
-            np.multiply(spec, kernel.spectrum, out=spec)
-        else:
-            spec = spec * kernel.spectrum
+        spec = _times_kernel(scipy.fft.rfft(x[:, j * b : j * b + k], axis=-1, workers=1), kernel, out_channels)
         out[:, j * b : (j + 1) * b] = scipy.fft.irfft(spec, n=k, axis=-1, workers=1)[:, n - 1 :]
     return out
 
@@ -576,13 +582,7 @@ def convolve_block(block, state, *, kernel):
 def _frames_still_due(state, kernel, tail_frames):
     """Output frames after ``state.frames_out`` up to the input's end plus ``tail_frames`` (validated)."""
     _check_state(state, kernel)
-    n1 = kernel.ir_frames - 1
-    if tail_frames is None:
-        tail = n1
-    elif _is_int(tail_frames) and 0 <= tail_frames <= n1:
-        tail = int(tail_frames)
-    else:
-        raise ParameterError(f"tail_frames = {tail_frames!r}: must be an integer from 0 to ir_frames - 1 = {n1}")
+    tail = _kept_tail(tail_frames, kernel.ir_frames)
     return state.frames_in + tail - state.frames_out
 
 

@@ -115,14 +115,18 @@ def kernel_for(task, output_dir=None, *, fft_size=None):
     return kernel
 
 
+def _kept_tail(task):
+    """Tail frames kept after the source: the response's, or none with ``tail = "cut"``."""
+    return task.tail_frames if task.tail == "extend" else 0
+
+
 def whole_size_for(task):
     """The transform size that convolves the task's whole source at once, or None: streamed.
 
     :func:`render.convolve.whole_fft_size` for the source's length, the
     room's response and the kept tail: a pure function of the plan.
     """
-    tail = task.tail_frames if task.tail == "extend" else 0
-    return convolve.whole_fft_size(task.tail_frames + 1, input_frames=task.info.frames, tail_frames=tail)
+    return convolve.whole_fft_size(task.tail_frames + 1, input_frames=task.info.frames, tail_frames=_kept_tail(task))
 
 
 def stream_block_frames(task):
@@ -252,14 +256,14 @@ def _convolved(task, output_dir, check=None):
 
     if whole is not None:
         blocks = list(audio_io.read_blocks(task.source, block_frames=total_in))
-        x = blocks[0] if len(blocks) == 1 else np.concatenate(blocks or [np.zeros((0, info.channels))])
+        x = np.concatenate(blocks) if len(blocks) > 1 else (blocks[0] if blocks else np.zeros((0, info.channels)))
         del blocks
         if x.shape[0] != total_in:
             raise AudioInputError(f"{task.key}: read {x.shape[0]} frames, the file's header says {total_in}")
         if check is not None:
             check(x)
         queue.push(_dry(x, task))
-        wet = convolve.convolve_whole(x, kernel=kernel, tail_frames=task.tail_frames if task.tail == "extend" else 0)
+        wet = convolve.convolve_whole(x, kernel=kernel, tail_frames=_kept_tail(task))
         del x
         yield pair(wet)
         return
@@ -274,8 +278,7 @@ def _convolved(task, output_dir, check=None):
         del block, wet  # the last (partial) block lives on in the queue and the state: no third copy
     if state.frames_in != total_in:
         raise AudioInputError(f"{task.key}: read {state.frames_in} frames, the file's header says {total_in}")
-    tail_frames = task.tail_frames if task.tail == "extend" else 0
-    for last in convolve.flush_blocks(state, kernel=kernel, tail_frames=tail_frames):
+    for last in convolve.flush_blocks(state, kernel=kernel, tail_frames=_kept_tail(task)):
         yield pair(last)
 
 
